@@ -1,0 +1,11 @@
+//! tagwright: a state-space data-quality pipeline for process historian tags.
+//!
+//! - [`ssm`]: the state-space mathematics (no I/O).
+//! - [`rng`]: a seeded random number generator for simulations and the demo.
+//!
+//! tagwright's outputs are estimates for reporting and analysis. They do not
+//! replace licensed safety-instrumented systems (IEC 61511), instrument
+//! maintenance or site procedures, and must not be used for control or protection.
+
+pub mod rng;
+pub mod ssm;

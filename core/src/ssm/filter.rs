@@ -1,0 +1,499 @@
+//! The Kalman filter with missing observations and exact diffuse initialisation.
+//!
+//! Univariate treatment (Durbin & Koopman 2012, §6.4; Koopman & Durbin 2000):
+//! the p elements of y_t are processed one at a time, so a partly missing y_t
+//! simply skips its missing elements and no matrix is inverted. For element i
+//! of time t, with z the i-th row of Z and P the current covariance:
+//!
+//! ```text
+//! v = y_ti - z a - d_i            innovation (prediction error)
+//! K = P z',  F = z K + h_i w_ti   (K is not divided by F)
+//! a <- a + K v / F
+//! P <- P - K K' / F
+//! ```
+//!
+//! and after the last element the prediction a <- T a + c, P <- T P T' + RQR'.
+//!
+//! Exact diffuse initialisation (DK §5.2, univariate form §6.4.3): while the
+//! diffuse part P_inf is non-zero, an element with F_inf = z P_inf z' > 0
+//! updates
+//!
+//! ```text
+//! a     <- a + K_inf v / F_inf
+//! P*    <- P* + K_inf K_inf' F* / F_inf^2 - (K* K_inf' + K_inf K*') / F_inf
+//! P_inf <- P_inf - K_inf K_inf' / F_inf
+//! ```
+//!
+//! and an element with F_inf = 0 takes the ordinary update with P*.
+//!
+//! # Likelihood convention
+//! log L = -1/2 sum (log 2 pi + log F_ti + v_ti^2 / F_ti) over the observed
+//! elements that are not diffuse updates. The terms of elements with
+//! F_inf > 0 are left out (the diffuse log-likelihood of DK §7.2.2 without
+//! its log F_inf terms, which do not depend on the parameters of the usual
+//! models); this is also statsmodels' convention with exact diffuse
+//! initialisation. Missing elements contribute nothing, so an all-missing
+//! stretch leaves the likelihood unchanged.
+//!
+//! # Numerical care
+//! The downdate P - K K'/F is a symmetric rank-one update (bitwise symmetric);
+//! after each prediction P is symmetrised and negative diagonal round-off is
+//! set to zero, so covariances stay symmetric positive semi-definite.
+//!
+//! # Steady state
+//! For p = 1, once the predicted covariance stops changing (relative change
+//! below `FilterOptions::steady_tol`) on a stretch with one-period steps, no
+//! missing value and unit H weight, the gain and F are frozen and only the
+//! state is updated (DK §4.3.4). Any missing value, weight or step change
+//! resumes the full recursion.
+
+use nalgebra::{
+    allocator::Allocator, Const, DMatrix, DVector, DefaultAllocator, Dim, Dyn, OMatrix, OVector, U1,
+};
+
+use super::model::{Observations, StateSpace};
+use super::{scalar, Result};
+
+pub(crate) const LN_2PI: f64 = 1.837_877_066_409_345_5;
+/// F_inf below this counts as zero (P_inf is O(1) by construction).
+pub(crate) const DIFFUSE_TOL: f64 = 1e-9;
+
+/// Which implementation runs the recursions.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum Path {
+    /// Scalar for m = p = 1, fixed-size for m <= 4, general otherwise.
+    #[default]
+    Auto,
+    /// Hand-written scalar code (m = 1, p = 1 only).
+    Scalar,
+    /// nalgebra fixed-size matrices (m <= 4; larger models fall back to general).
+    Fixed,
+    /// nalgebra dynamic matrices, preallocated.
+    General,
+}
+
+/// Options of a filter run.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct FilterOptions {
+    /// Keep states, covariances, innovations and gains (needed by the smoother).
+    pub store: bool,
+    /// Relative change of the predicted covariance below which the
+    /// recursion is treated as converged; 0 turns the shortcut off.
+    pub steady_tol: f64,
+    /// Implementation to use.
+    pub path: Path,
+}
+
+impl Default for FilterOptions {
+    fn default() -> Self {
+        FilterOptions {
+            store: true,
+            steady_tol: 1e-11,
+            path: Path::Auto,
+        }
+    }
+}
+
+impl FilterOptions {
+    /// Likelihood only: nothing stored.
+    pub fn loglik_only() -> Self {
+        FilterOptions {
+            store: false,
+            ..Default::default()
+        }
+    }
+}
+
+/// What happened to one observation element.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[repr(u8)]
+pub enum ElemKind {
+    /// NaN: skipped.
+    Missing = 0,
+    /// Ordinary update; counted in the likelihood.
+    Regular = 1,
+    /// Diffuse update (F_inf > 0); not counted in the likelihood.
+    Diffuse = 2,
+    /// F = 0: the element carries no new information; skipped.
+    Degenerate = 3,
+}
+
+/// Extra quantities of a diffuse update, kept for the smoother.
+#[derive(Debug, Clone, PartialEq)]
+pub struct DiffuseElem {
+    pub t: usize,
+    pub i: usize,
+    pub f_inf: f64,
+    pub k_inf: Vec<f64>,
+}
+
+/// Result of a filter run. Arrays are row-major by time: element (t, j) of an
+/// n x m array is at `t * m + j`; m x m covariances are stored column-major
+/// at `t * m * m`.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct FilterOutput {
+    pub n: usize,
+    pub p: usize,
+    pub m: usize,
+    /// Log-likelihood (see the module documentation for the convention).
+    pub loglik: f64,
+    /// Observed elements counted in the likelihood.
+    pub nobs: usize,
+    /// Observed elements used by diffuse updates (not counted).
+    pub n_diffuse_obs: usize,
+    /// First time index after the diffuse phase (0 if there was none).
+    pub diffuse_end: usize,
+    /// Sum of v^2 / F over the counted elements.
+    pub sum_v2_f: f64,
+    /// Sum of log F over the counted elements.
+    pub sum_log_f: f64,
+    /// First time index at which the steady-state shortcut was in force.
+    pub steady_from: Option<usize>,
+    /// The implementation that ran.
+    pub path: Path,
+    /// a_t: predicted state given y_1..y_{t-1} (n x m). Stored runs only.
+    pub a_pred: Vec<f64>,
+    /// P*_t: finite part of the predicted covariance (n x m x m).
+    pub p_pred: Vec<f64>,
+    /// a_{t|t} (n x m).
+    pub a_filt: Vec<f64>,
+    /// P_{t|t}, finite part (n x m x m).
+    pub p_filt: Vec<f64>,
+    /// Innovations v (n x p); NaN where missing.
+    pub v: Vec<f64>,
+    /// Innovation variances F (F* for diffuse updates) (n x p).
+    pub f: Vec<f64>,
+    /// Gains K = P z' (K* for diffuse updates) (n x p x m).
+    pub k: Vec<f64>,
+    /// Element kinds (n x p).
+    pub kind: Vec<ElemKind>,
+    /// P_inf at each time of the diffuse phase (diffuse_end x m x m).
+    pub p_inf_pred: Vec<f64>,
+    /// Diffuse updates, in order.
+    pub diffuse: Vec<DiffuseElem>,
+}
+
+impl FilterOutput {
+    pub(crate) fn allocate(n: usize, p: usize, m: usize, store: bool, path: Path) -> Self {
+        let mut out = FilterOutput {
+            n,
+            p,
+            m,
+            path,
+            ..Default::default()
+        };
+        if store {
+            out.a_pred = vec![0.0; n * m];
+            out.p_pred = vec![0.0; n * m * m];
+            out.a_filt = vec![0.0; n * m];
+            out.p_filt = vec![0.0; n * m * m];
+            out.v = vec![f64::NAN; n * p];
+            out.f = vec![f64::NAN; n * p];
+            out.k = vec![0.0; n * p * m];
+            out.kind = vec![ElemKind::Missing; n * p];
+        }
+        out
+    }
+
+    /// True if states and covariances were stored.
+    pub fn is_stored(&self) -> bool {
+        self.a_pred.len() == self.n * self.m && self.n > 0
+    }
+
+    /// Standardised innovation v / sqrt(F) of element (t, i); NaN unless the
+    /// element was a regular (counted) update.
+    pub fn standardised(&self, t: usize, i: usize) -> f64 {
+        let j = t * self.p + i;
+        if self.kind.get(j) == Some(&ElemKind::Regular) {
+            self.v[j] / self.f[j].sqrt()
+        } else {
+            f64::NAN
+        }
+    }
+
+    /// Maximum-likelihood scale when every variance of the model was divided
+    /// by it: sigma2_hat = sum(v^2/F) / nobs (DK §2.10.2, §7.3).
+    pub fn concentrated_scale(&self) -> f64 {
+        self.sum_v2_f / self.nobs as f64
+    }
+
+    /// Log-likelihood with the scale concentrated out:
+    /// -nobs/2 (log 2 pi + 1 + log sigma2_hat) - 1/2 sum log F.
+    pub fn concentrated_loglik(&self) -> f64 {
+        let n = self.nobs as f64;
+        -0.5 * n * (LN_2PI + 1.0 + self.concentrated_scale().ln()) - 0.5 * self.sum_log_f
+    }
+}
+
+/// Runs the Kalman filter. Errors on infinite observations or bad steps;
+/// shapes must match (panics otherwise).
+pub fn filter(
+    model: &StateSpace,
+    obs: &Observations,
+    opts: &FilterOptions,
+) -> Result<FilterOutput> {
+    obs.validate()?;
+    assert_eq!(
+        obs.p,
+        model.obs_dim(),
+        "observations have p elements, the model expects another p"
+    );
+    let m = model.state_dim();
+    Ok(match resolve_path(opts.path, m, obs.p) {
+        Path::Scalar => scalar::filter(model, obs, opts),
+        Path::Fixed => match m {
+            1 => run(Const::<1>, model, obs, opts, Path::Fixed),
+            2 => run(Const::<2>, model, obs, opts, Path::Fixed),
+            3 => run(Const::<3>, model, obs, opts, Path::Fixed),
+            4 => run(Const::<4>, model, obs, opts, Path::Fixed),
+            _ => run(Dyn(m), model, obs, opts, Path::General),
+        },
+        _ => run(Dyn(m), model, obs, opts, Path::General),
+    })
+}
+
+/// The path that will actually run for a model of m states and p elements.
+pub fn resolve_path(path: Path, m: usize, p: usize) -> Path {
+    match path {
+        Path::Auto if m == 1 && p == 1 => Path::Scalar,
+        Path::Auto if m <= 4 => Path::Fixed,
+        Path::Auto => Path::General,
+        Path::Scalar if m == 1 && p == 1 => Path::Scalar,
+        Path::Scalar | Path::Fixed if m <= 4 => Path::Fixed,
+        _ => Path::General,
+    }
+}
+
+pub(crate) fn omat<D: Dim>(dim: D, x: &DMatrix<f64>) -> OMatrix<f64, D, D>
+where
+    DefaultAllocator: Allocator<D, D>,
+{
+    OMatrix::<f64, D, D>::from_iterator_generic(dim, dim, x.iter().cloned())
+}
+
+pub(crate) fn ovec<D: Dim>(dim: D, x: impl Iterator<Item = f64>) -> OVector<f64, D>
+where
+    DefaultAllocator: Allocator<D>,
+{
+    OVector::<f64, D>::from_iterator_generic(dim, U1, x)
+}
+
+/// Symmetrise and clear negative diagonal round-off.
+pub(crate) fn tidy<D: Dim>(p: &mut OMatrix<f64, D, D>)
+where
+    DefaultAllocator: Allocator<D, D>,
+{
+    let m = p.nrows();
+    for i in 0..m {
+        for j in 0..i {
+            let s = 0.5 * (p[(i, j)] + p[(j, i)]);
+            p[(i, j)] = s;
+            p[(j, i)] = s;
+        }
+        if p[(i, i)] < 0.0 {
+            p[(i, i)] = 0.0;
+        }
+    }
+}
+
+fn run<D: Dim>(
+    dim: D,
+    model: &StateSpace,
+    obs: &Observations,
+    opts: &FilterOptions,
+    path: Path,
+) -> FilterOutput
+where
+    DefaultAllocator: Allocator<D, D> + Allocator<D>,
+{
+    let m = model.state_dim();
+    let p = obs.p;
+    let n = obs.len();
+    let store = opts.store;
+    let mut out = FilterOutput::allocate(n, p, m, store, path);
+
+    let zrows: Vec<OVector<f64, D>> = (0..p)
+        .map(|i| ovec(dim, model.z.row(i).iter().cloned()))
+        .collect();
+    let c = ovec(dim, model.c.iter().cloned());
+    let mut a = ovec(dim, model.a1.iter().cloned());
+    let mut ps = omat(dim, &model.p1_star);
+    let mut pi = omat(dim, &model.p1_inf);
+    let mut diffuse = pi.amax() > 0.0;
+
+    let mut sys = model.step_system();
+    let mut tt = omat(dim, &sys.t);
+    let mut ttr = tt.transpose();
+    let mut rqr = omat(dim, &sys.rqr);
+    let mut cur_dt = 1.0;
+
+    let mut ks = OVector::<f64, D>::zeros_generic(dim, U1);
+    let mut ki = OVector::<f64, D>::zeros_generic(dim, U1);
+    let mut tmpv = OVector::<f64, D>::zeros_generic(dim, U1);
+    let mut tmp = OMatrix::<f64, D, D>::zeros_generic(dim, dim);
+    let mut p_prev = OMatrix::<f64, D, D>::zeros_generic(dim, dim);
+
+    // Steady-state cache (p == 1 only).
+    let allow_steady = p == 1 && opts.steady_tol > 0.0;
+    let mut steady = false;
+    let mut st_k = OVector::<f64, D>::zeros_generic(dim, U1);
+    let mut st_f = 0.0;
+    let mut st_pfilt = OMatrix::<f64, D, D>::zeros_generic(dim, dim);
+
+    let mut loglik = 0.0;
+    for t in 0..n {
+        if store {
+            out.a_pred[t * m..(t + 1) * m].copy_from_slice(a.as_slice());
+            out.p_pred[t * m * m..(t + 1) * m * m].copy_from_slice(ps.as_slice());
+            if diffuse {
+                out.p_inf_pred.extend_from_slice(pi.as_slice());
+            }
+        }
+        // The steady shortcut holds only for a plain step.
+        if steady && (obs.y[t * p].is_nan() || obs.weight(t, 0) != 1.0) {
+            steady = false;
+        }
+        let mut plain = !diffuse;
+        if !steady && allow_steady {
+            p_prev.copy_from(&ps);
+        }
+        for i in 0..p {
+            let j = t * p + i;
+            let y = obs.y[j];
+            if y.is_nan() {
+                plain = false;
+                continue;
+            }
+            let w = obs.weight(t, i);
+            if w != 1.0 {
+                plain = false;
+            }
+            let z = &zrows[i];
+            let h = model.h[i] * w;
+            let v = y - z.dot(&a) - model.d[i];
+            let f;
+            if steady {
+                ks.copy_from(&st_k);
+                f = st_f;
+            } else {
+                ks.gemv(1.0, &ps, z, 0.0);
+                f = z.dot(&ks) + h;
+            }
+            if diffuse {
+                ki.gemv(1.0, &pi, z, 0.0);
+                let fi = z.dot(&ki);
+                if fi > DIFFUSE_TOL {
+                    a.axpy(v / fi, &ki, 1.0);
+                    ps.ger(f / (fi * fi), &ki, &ki, 1.0);
+                    ps.ger(-1.0 / fi, &ks, &ki, 1.0);
+                    ps.ger(-1.0 / fi, &ki, &ks, 1.0);
+                    tidy(&mut ps);
+                    pi.ger(-1.0 / fi, &ki, &ki, 1.0);
+                    tidy(&mut pi);
+                    out.n_diffuse_obs += 1;
+                    if store {
+                        out.v[j] = v;
+                        out.f[j] = f;
+                        out.k[j * m..(j + 1) * m].copy_from_slice(ks.as_slice());
+                        out.kind[j] = ElemKind::Diffuse;
+                        out.diffuse.push(DiffuseElem {
+                            t,
+                            i,
+                            f_inf: fi,
+                            k_inf: ki.as_slice().to_vec(),
+                        });
+                    }
+                    continue;
+                }
+            }
+            if !(f > 1e-13 * (h + ps.diagonal().amax()).max(f64::MIN_POSITIVE)) {
+                if store {
+                    out.v[j] = v;
+                    out.kind[j] = ElemKind::Degenerate;
+                }
+                continue;
+            }
+            a.axpy(v / f, &ks, 1.0);
+            if !steady {
+                ps.ger(-1.0 / f, &ks, &ks, 1.0);
+            }
+            let v2f = v * v / f;
+            let lf = f.ln();
+            loglik -= 0.5 * (LN_2PI + lf + v2f);
+            out.sum_v2_f += v2f;
+            out.sum_log_f += lf;
+            out.nobs += 1;
+            if store {
+                out.v[j] = v;
+                out.f[j] = f;
+                out.k[j * m..(j + 1) * m].copy_from_slice(ks.as_slice());
+                out.kind[j] = ElemKind::Regular;
+            }
+        }
+        if diffuse && pi.amax() <= DIFFUSE_TOL {
+            diffuse = false;
+            pi.fill(0.0);
+            out.diffuse_end = t + 1;
+        }
+        if store {
+            out.a_filt[t * m..(t + 1) * m].copy_from_slice(a.as_slice());
+            let pf = if steady { &st_pfilt } else { &ps };
+            out.p_filt[t * m * m..(t + 1) * m * m].copy_from_slice(pf.as_slice());
+        }
+        // Prediction.
+        let dt = obs.step(t);
+        if dt != cur_dt {
+            model.system_for_step(dt, &mut sys);
+            tt.copy_from_slice(sys.t.as_slice());
+            ttr.copy_from(&tt.transpose());
+            rqr.copy_from_slice(sys.rqr.as_slice());
+            cur_dt = dt;
+            steady = false;
+            plain = false;
+        }
+        tmpv.gemv(1.0, &tt, &a, 0.0);
+        a.copy_from(&tmpv);
+        a += &c;
+        if steady {
+            continue; // ps already holds the steady predicted covariance
+        }
+        let check_steady = allow_steady && plain && dt == 1.0;
+        tmp.gemm(1.0, &tt, &ps, 0.0);
+        ps.gemm(1.0, &tmp, &ttr, 0.0);
+        ps += &rqr;
+        tidy(&mut ps);
+        if diffuse {
+            tmp.gemm(1.0, &tt, &pi, 0.0);
+            pi.gemm(1.0, &tmp, &ttr, 0.0);
+            tidy(&mut pi);
+        }
+        if check_steady {
+            let scale = ps.amax().max(f64::MIN_POSITIVE);
+            p_prev -= &ps;
+            if p_prev.amax() <= opts.steady_tol * scale {
+                steady = true;
+                out.steady_from.get_or_insert(t + 1);
+                st_k.gemv(1.0, &ps, &zrows[0], 0.0);
+                st_f = zrows[0].dot(&st_k) + model.h[0];
+                // Filtered covariance in the steady state: P - K K'/F.
+                st_pfilt.copy_from(&ps);
+                st_pfilt.ger(-1.0 / st_f, &st_k, &st_k, 1.0);
+            }
+        }
+    }
+    if diffuse {
+        out.diffuse_end = n;
+    }
+    out.loglik = loglik;
+    out
+}
+
+/// Copies a stored m x m block into a dynamic matrix (for callers outside the hot loop).
+pub fn stored_matrix(data: &[f64], t: usize, m: usize) -> DMatrix<f64> {
+    DMatrix::from_column_slice(m, m, &data[t * m * m..(t + 1) * m * m])
+}
+
+/// Copies a stored m-vector.
+pub fn stored_vector(data: &[f64], t: usize, m: usize) -> DVector<f64> {
+    DVector::from_column_slice(&data[t * m..(t + 1) * m])
+}

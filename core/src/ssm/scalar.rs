@@ -1,0 +1,218 @@
+//! Hand-written scalar filter and smoother for models with one state and one
+//! observation element (local level, AR(1), a constant). The equations are
+//! those of `filter.rs` and `smoother.rs` with every matrix a number; for the
+//! local level they reduce to Durbin & Koopman (2012) §2.2 (filter), §2.4
+//! (smoother) and §2.9 (diffuse initialisation: a_2 = y_1, P_2 = sigma2_eps +
+//! sigma2_eta).
+
+use super::filter::{
+    DiffuseElem, ElemKind, FilterOptions, FilterOutput, Path, DIFFUSE_TOL, LN_2PI,
+};
+use super::model::{Observations, StateSpace};
+use super::smoother::SmootherOutput;
+
+pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOptions) -> FilterOutput {
+    let n = obs.len();
+    let store = opts.store;
+    let mut out = FilterOutput::allocate(n, 1, 1, store, Path::Scalar);
+    let (z, d, h, c) = (model.z[(0, 0)], model.d[0], model.h[0], model.c[0]);
+    let mut sys = model.step_system();
+    let (mut tr, mut q, mut cur_dt) = (sys.t[(0, 0)], sys.rqr[(0, 0)], 1.0);
+    let mut a = model.a1[0];
+    let mut ps = model.p1_star[(0, 0)];
+    let mut pi = model.p1_inf[(0, 0)];
+    let mut diffuse = pi > 0.0;
+    let allow_steady = opts.steady_tol > 0.0;
+    let mut steady = false;
+    let (mut st_k, mut st_f, mut st_pf) = (0.0, 0.0, 0.0);
+    let mut loglik = 0.0;
+    let (mut sum_v2_f, mut sum_log_f, mut nobs) = (0.0, 0.0, 0usize);
+
+    for t in 0..n {
+        if store {
+            out.a_pred[t] = a;
+            out.p_pred[t] = ps;
+            if diffuse {
+                out.p_inf_pred.push(pi);
+            }
+        }
+        let y = obs.y[t];
+        let w = obs.weight(t, 0);
+        let mut plain = !diffuse && !y.is_nan() && w == 1.0;
+        if steady && !plain {
+            steady = false;
+        }
+        let p_prev = ps;
+        if !y.is_nan() {
+            let v = y - z * a - d;
+            let (k, f) = if steady {
+                (st_k, st_f)
+            } else {
+                let k = ps * z;
+                (k, z * k + h * w)
+            };
+            let ki = pi * z;
+            let fi = z * ki;
+            if diffuse && fi > DIFFUSE_TOL {
+                a += ki * v / fi;
+                ps += ki * ki * f / (fi * fi) - 2.0 * k * ki / fi;
+                ps = ps.max(0.0);
+                pi -= ki * ki / fi;
+                out.n_diffuse_obs += 1;
+                if store {
+                    out.v[t] = v;
+                    out.f[t] = f;
+                    out.k[t] = k;
+                    out.kind[t] = ElemKind::Diffuse;
+                    out.diffuse.push(DiffuseElem {
+                        t,
+                        i: 0,
+                        f_inf: fi,
+                        k_inf: vec![ki],
+                    });
+                }
+            } else if f > 1e-13 * (h * w + ps).max(f64::MIN_POSITIVE) {
+                a += k * v / f;
+                if !steady {
+                    ps = (ps - k * k / f).max(0.0);
+                }
+                let v2f = v * v / f;
+                let lf = f.ln();
+                loglik -= 0.5 * (LN_2PI + lf + v2f);
+                sum_v2_f += v2f;
+                sum_log_f += lf;
+                nobs += 1;
+                if store {
+                    out.v[t] = v;
+                    out.f[t] = f;
+                    out.k[t] = k;
+                    out.kind[t] = ElemKind::Regular;
+                }
+            } else if store {
+                out.v[t] = v;
+                out.kind[t] = ElemKind::Degenerate;
+            }
+        }
+        if diffuse && pi <= DIFFUSE_TOL {
+            diffuse = false;
+            pi = 0.0;
+            out.diffuse_end = t + 1;
+        }
+        if store {
+            out.a_filt[t] = a;
+            out.p_filt[t] = if steady { st_pf } else { ps };
+        }
+        let dt = obs.step(t);
+        if dt != cur_dt {
+            model.system_for_step(dt, &mut sys);
+            tr = sys.t[(0, 0)];
+            q = sys.rqr[(0, 0)];
+            cur_dt = dt;
+            steady = false;
+            plain = false;
+        }
+        a = tr * a + c;
+        if steady {
+            continue;
+        }
+        ps = (tr * tr * ps + q).max(0.0);
+        if diffuse {
+            pi *= tr * tr;
+        }
+        if allow_steady
+            && plain
+            && dt == 1.0
+            && (ps - p_prev).abs() <= opts.steady_tol * ps.max(f64::MIN_POSITIVE)
+        {
+            steady = true;
+            out.steady_from.get_or_insert(t + 1);
+            st_k = ps * z;
+            st_f = z * st_k + h;
+            st_pf = ps - st_k * st_k / st_f;
+        }
+    }
+    if diffuse {
+        out.diffuse_end = n;
+    }
+    out.loglik = loglik;
+    out.sum_v2_f = sum_v2_f;
+    out.sum_log_f = sum_log_f;
+    out.nobs = nobs;
+    out
+}
+
+pub(crate) fn smooth(
+    model: &StateSpace,
+    obs: &Observations,
+    filt: &FilterOutput,
+) -> SmootherOutput {
+    let n = filt.n;
+    let z = model.z[(0, 0)];
+    let mut state = vec![0.0; n];
+    let mut cov = vec![0.0; n];
+    let mut sys = model.step_system();
+    let (mut tr, mut cur_dt) = (sys.t[(0, 0)], 1.0);
+    let (mut r0, mut n0, mut r1, mut n1, mut n2) = (0.0, 0.0, 0.0, 0.0, 0.0);
+    let mut diffuse_iter = filt.diffuse.iter().rev();
+    for t in (0..n).rev() {
+        let in_diffuse = t < filt.diffuse_end;
+        match filt.kind[t] {
+            ElemKind::Regular => {
+                let (v, f, k) = (filt.v[t], filt.f[t], filt.k[t]);
+                let l = 1.0 - k * z / f;
+                r0 = z * v / f + l * r0;
+                n0 = z * z / f + l * l * n0;
+                if in_diffuse {
+                    n1 *= l;
+                }
+            }
+            ElemKind::Diffuse => {
+                let Some(de) = diffuse_iter.next() else {
+                    continue;
+                };
+                debug_assert_eq!(de.t, t);
+                let (fi, ki) = (de.f_inf, de.k_inf[0]);
+                let (v, f, k) = (filt.v[t], filt.f[t], filt.k[t]);
+                let l0 = 1.0 - ki * z / fi;
+                let l1 = (ki * f / fi - k) * z / fi;
+                let r1n = z * v / fi + l0 * r1 + l1 * r0;
+                let r0n = l0 * r0;
+                let n2n = -z * z * f / (fi * fi) + l0 * l0 * n2 + 2.0 * l0 * l1 * n1 + l1 * l1 * n0;
+                let n1n = z * z / fi + l0 * l0 * n1 + l1 * l0 * n0;
+                let n0n = l0 * l0 * n0;
+                (r0, r1, n0, n1, n2) = (r0n, r1n, n0n, n1n, n2n);
+            }
+            ElemKind::Missing | ElemKind::Degenerate => {}
+        }
+        let (a, p) = (filt.a_pred[t], filt.p_pred[t]);
+        if in_diffuse {
+            let pinf = filt.p_inf_pred[t];
+            state[t] = a + p * r0 + pinf * r1;
+            cov[t] = (p - p * p * n0 - 2.0 * pinf * n1 * p - pinf * pinf * n2).max(0.0);
+        } else {
+            state[t] = a + p * r0;
+            cov[t] = (p - p * p * n0).max(0.0);
+        }
+        if t > 0 {
+            let dt = obs.step(t - 1);
+            if dt != cur_dt {
+                model.system_for_step(dt, &mut sys);
+                tr = sys.t[(0, 0)];
+                cur_dt = dt;
+            }
+            r0 *= tr;
+            n0 *= tr * tr;
+            if t - 1 < filt.diffuse_end {
+                r1 *= tr;
+                n1 *= tr * tr;
+                n2 *= tr * tr;
+            }
+        }
+    }
+    SmootherOutput {
+        n,
+        m: 1,
+        state,
+        cov,
+    }
+}

@@ -1,0 +1,227 @@
+//! Fixed-interval state smoothing with exact diffuse initialisation.
+//!
+//! Backward recursion of Durbin & Koopman (2012) §4.4 (state smoothing, the
+//! r_t / N_t form of the fixed-interval smoother, which gives the same
+//! means and variances as Rauch, Tung & Striebel 1965 without inverting
+//! P_{t+1}), in the univariate form of §6.4.4. For a regular element with
+//! L = I - K z'/F:
+//!
+//! ```text
+//! r <- z' v / F + L' r
+//! N <- z' z / F + L' N L
+//! ```
+//!
+//! between times r <- T' r, N <- T' N T, and at each time
+//!
+//! ```text
+//! a_hat_t = a_t + P_t r_{t-1},    V_t = P_t - P_t N_{t-1} P_t.
+//! ```
+//!
+//! In the diffuse phase (DK §5.3, eqs. 5.21-5.24 in univariate form) with
+//! L0 = I - K_inf z'/F_inf and L1 = (K_inf F*/F_inf - K*) z'/F_inf:
+//!
+//! ```text
+//! r0 <- L0' r0
+//! r1 <- z' v / F_inf + L0' r1 + L1' r0
+//! N0 <- L0' N0 L0
+//! N1 <- z' z / F_inf + L0' N1 L0 + L1' N0 L0
+//! N2 <- -z' z F*/F_inf^2 + L0' N2 L0 + L0' N1 L1 + (L0' N1 L1)' + L1' N0 L1
+//! a_hat = a + P* r0 + P_inf r1
+//! V     = P* - P* N0 P* - (P_inf N1 P*)' - P_inf N1 P* - P_inf N2 P_inf
+//! ```
+//!
+//! and a regular element inside the diffuse phase also sets N1 <- N1 L.
+
+use nalgebra::{allocator::Allocator, Const, DefaultAllocator, Dim, Dyn, OMatrix, OVector, U1};
+
+use super::filter::{omat, ovec, tidy, ElemKind, FilterOutput, Path};
+use super::model::{Observations, StateSpace};
+use super::scalar;
+
+/// Smoothed states and covariances, stored like the filter's arrays.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct SmootherOutput {
+    pub n: usize,
+    pub m: usize,
+    /// a_hat_t = E(a_t | y_1..y_n) (n x m).
+    pub state: Vec<f64>,
+    /// V_t = Var(a_t | y_1..y_n) (n x m x m, column-major blocks).
+    pub cov: Vec<f64>,
+}
+
+impl SmootherOutput {
+    /// Smoothed signal z a_hat_t + d for observation element i of the model.
+    pub fn signal(&self, model: &StateSpace, t: usize, i: usize) -> f64 {
+        let m = self.m;
+        let a = &self.state[t * m..(t + 1) * m];
+        model.d[i] + (0..m).map(|j| model.z[(i, j)] * a[j]).sum::<f64>()
+    }
+
+    /// Variance of the smoothed signal, z V_t z'.
+    pub fn signal_var(&self, model: &StateSpace, t: usize, i: usize) -> f64 {
+        let m = self.m;
+        let v = &self.cov[t * m * m..(t + 1) * m * m];
+        let mut s = 0.0;
+        for c in 0..m {
+            for r in 0..m {
+                s += model.z[(i, r)] * v[c * m + r] * model.z[(i, c)];
+            }
+        }
+        s.max(0.0)
+    }
+}
+
+/// Smooths a stored filter run. Panics if `filt` was run without `store`
+/// (a programmer error).
+pub fn smooth(model: &StateSpace, obs: &Observations, filt: &FilterOutput) -> SmootherOutput {
+    assert!(
+        filt.is_stored() || filt.n == 0,
+        "smoothing needs a filter run with store = true"
+    );
+    let m = model.state_dim();
+    match filt.path {
+        Path::Scalar => scalar::smooth(model, obs, filt),
+        Path::Fixed => match m {
+            1 => run(Const::<1>, model, obs, filt),
+            2 => run(Const::<2>, model, obs, filt),
+            3 => run(Const::<3>, model, obs, filt),
+            4 => run(Const::<4>, model, obs, filt),
+            _ => run(Dyn(m), model, obs, filt),
+        },
+        _ => run(Dyn(m), model, obs, filt),
+    }
+}
+
+fn run<D: Dim>(
+    dim: D,
+    model: &StateSpace,
+    obs: &Observations,
+    filt: &FilterOutput,
+) -> SmootherOutput
+where
+    DefaultAllocator: Allocator<D, D> + Allocator<D> + Allocator<U1, D>,
+{
+    let (n, p, m) = (filt.n, filt.p, filt.m);
+    let mut out = SmootherOutput {
+        n,
+        m,
+        state: vec![0.0; n * m],
+        cov: vec![0.0; n * m * m],
+    };
+    let zrows: Vec<OVector<f64, D>> = (0..p)
+        .map(|i| ovec(dim, model.z.row(i).iter().cloned()))
+        .collect();
+    let mut sys = model.step_system();
+    let mut tt = omat(dim, &sys.t);
+    let mut ttr = tt.transpose();
+    let mut cur_dt = 1.0;
+
+    let zero_v = || OVector::<f64, D>::zeros_generic(dim, U1);
+    let zero_m = || OMatrix::<f64, D, D>::zeros_generic(dim, dim);
+    let (mut r0, mut r1) = (zero_v(), zero_v());
+    let (mut n0, mut n1, mut n2) = (zero_m(), zero_m(), zero_m());
+    let (mut k, mut u, mut a) = (zero_v(), zero_v(), zero_v());
+    let (mut pm, mut v, mut tmp) = (zero_m(), zero_m(), zero_m());
+    let mut diffuse_iter = filt.diffuse.iter().rev();
+
+    for t in (0..n).rev() {
+        let in_diffuse = t < filt.diffuse_end;
+        for i in (0..p).rev() {
+            let j = t * p + i;
+            let z = &zrows[i];
+            match filt.kind[j] {
+                ElemKind::Regular => {
+                    let (vj, f) = (filt.v[j], filt.f[j]);
+                    k.copy_from_slice(&filt.k[j * m..(j + 1) * m]);
+                    // L'NL = N - (z u' + u z')/F + z z' (k'Nk)/F^2 with u = N k.
+                    u.gemv(1.0, &n0, &k, 0.0);
+                    let s = k.dot(&u);
+                    let kr = k.dot(&r0);
+                    r0.axpy((vj - kr) / f, z, 1.0);
+                    n0.ger(-1.0 / f, z, &u, 1.0);
+                    n0.ger(-1.0 / f, &u, z, 1.0);
+                    n0.ger((s / f + 1.0) / f, z, z, 1.0);
+                    if in_diffuse {
+                        u.gemv(1.0, &n1, &k, 0.0);
+                        n1.ger(-1.0 / f, &u, z, 1.0);
+                    }
+                }
+                ElemKind::Diffuse => {
+                    let Some(de) = diffuse_iter.next() else {
+                        continue;
+                    };
+                    debug_assert_eq!((de.t, de.i), (t, i));
+                    let (vj, f, fi) = (filt.v[j], filt.f[j], de.f_inf);
+                    let ki = ovec(dim, de.k_inf.iter().cloned());
+                    k.copy_from_slice(&filt.k[j * m..(j + 1) * m]);
+                    let eye = OMatrix::<f64, D, D>::identity_generic(dim, dim);
+                    let l0 = &eye - &ki * z.transpose() / fi;
+                    let w = (&ki * (f / fi) - &k) / fi;
+                    let l1 = &w * z.transpose();
+                    let zz = z * z.transpose();
+                    let r1n = z * (vj / fi) + l0.transpose() * &r1 + l1.transpose() * &r0;
+                    let r0n = l0.transpose() * &r0;
+                    let cross = l0.transpose() * &n1 * &l1;
+                    let n2n = &zz * (-f / (fi * fi))
+                        + l0.transpose() * &n2 * &l0
+                        + &cross
+                        + cross.transpose()
+                        + l1.transpose() * &n0 * &l1;
+                    let n1n = &zz / fi + l0.transpose() * &n1 * &l0 + l1.transpose() * &n0 * &l0;
+                    let n0n = l0.transpose() * &n0 * &l0;
+                    r0 = r0n;
+                    r1 = r1n;
+                    n0 = n0n;
+                    n1 = n1n;
+                    n2 = n2n;
+                }
+                ElemKind::Missing | ElemKind::Degenerate => {}
+            }
+        }
+        // Smoothed state and covariance at t.
+        a.copy_from_slice(&filt.a_pred[t * m..(t + 1) * m]);
+        pm.copy_from_slice(&filt.p_pred[t * m * m..(t + 1) * m * m]);
+        a.gemv(1.0, &pm, &r0, 1.0);
+        v.copy_from(&pm);
+        tmp.gemm(1.0, &n0, &pm, 0.0);
+        v.gemm(-1.0, &pm, &tmp, 1.0);
+        if in_diffuse {
+            let pinf = OMatrix::<f64, D, D>::from_column_slice_generic(
+                dim,
+                dim,
+                &filt.p_inf_pred[t * m * m..(t + 1) * m * m],
+            );
+            a.gemv(1.0, &pinf, &r1, 1.0);
+            let c = &pinf * &n1 * &pm;
+            v -= &c;
+            v -= c.transpose();
+            v -= &pinf * &n2 * &pinf;
+        }
+        tidy(&mut v);
+        out.state[t * m..(t + 1) * m].copy_from_slice(a.as_slice());
+        out.cov[t * m * m..(t + 1) * m * m].copy_from_slice(v.as_slice());
+        // Step back through the transition T_{t-1}: r <- T'r, N <- T'NT.
+        if t > 0 {
+            let dt = obs.step(t - 1);
+            if dt != cur_dt {
+                model.system_for_step(dt, &mut sys);
+                tt.copy_from_slice(sys.t.as_slice());
+                ttr.copy_from(&tt.transpose());
+                cur_dt = dt;
+            }
+            u.gemv(1.0, &ttr, &r0, 0.0);
+            r0.copy_from(&u);
+            tmp.gemm(1.0, &n0, &tt, 0.0);
+            n0.gemm(1.0, &ttr, &tmp, 0.0);
+            if t - 1 < filt.diffuse_end {
+                u.gemv(1.0, &ttr, &r1, 0.0);
+                r1.copy_from(&u);
+                tmp.gemm(1.0, &n1, &tt, 0.0);
+                n1.gemm(1.0, &ttr, &tmp, 0.0);
+                tmp.gemm(1.0, &n2, &tt, 0.0);
+                n2.gemm(1.0, &ttr, &tmp, 0.0);
+            }
+        }
+    }
+    out
+}
