@@ -27,13 +27,16 @@
 //! and an element with F_inf = 0 takes the ordinary update with P*.
 //!
 //! # Likelihood convention
-//! log L = -1/2 sum (log 2 pi + log F_ti + v_ti^2 / F_ti) over the observed
-//! elements that are not diffuse updates. The terms of elements with
-//! F_inf > 0 are left out (the diffuse log-likelihood of DK §7.2.2 without
-//! its log F_inf terms, which do not depend on the parameters of the usual
-//! models); this is also statsmodels' convention with exact diffuse
-//! initialisation. Missing elements contribute nothing, so an all-missing
-//! stretch leaves the likelihood unchanged.
+//! The diffuse log-likelihood of DK (2012) §7.2.2, eq. (7.4), element-wise:
+//!
+//! ```text
+//! log L = -N/2 log 2 pi - 1/2 sum_{diffuse} log F_inf - 1/2 sum_{regular} (log F + v^2 / F)
+//! ```
+//!
+//! where N counts every observed element, "diffuse" the elements with
+//! F_inf > 0 and "regular" the others. statsmodels uses the same convention
+//! with exact diffuse initialisation. Missing elements contribute nothing, so
+//! an all-missing stretch leaves the likelihood unchanged.
 //!
 //! # Numerical care
 //! The downdate P - K K'/F is a symmetric rank-one update (bitwise symmetric);
@@ -147,6 +150,8 @@ pub struct FilterOutput {
     pub sum_v2_f: f64,
     /// Sum of log F over the counted elements.
     pub sum_log_f: f64,
+    /// Sum of log F_inf over the diffuse updates.
+    pub sum_log_f_inf: f64,
     /// First time index at which the steady-state shortcut was in force.
     pub steady_from: Option<usize>,
     /// The implementation that ran.
@@ -217,11 +222,21 @@ impl FilterOutput {
         self.sum_v2_f / self.nobs as f64
     }
 
-    /// Log-likelihood with the scale concentrated out:
-    /// -nobs/2 (log 2 pi + 1 + log sigma2_hat) - 1/2 sum log F.
+    /// Log-likelihood with the scale concentrated out (F_inf does not scale):
+    /// -N/2 log 2 pi - 1/2 sum log F_inf - nobs/2 (1 + log sigma2_hat) - 1/2 sum log F.
     pub fn concentrated_loglik(&self) -> f64 {
+        let n_all = (self.nobs + self.n_diffuse_obs) as f64;
         let n = self.nobs as f64;
-        -0.5 * n * (LN_2PI + 1.0 + self.concentrated_scale().ln()) - 0.5 * self.sum_log_f
+        -0.5 * (n_all * LN_2PI
+            + self.sum_log_f_inf
+            + n * (1.0 + self.concentrated_scale().ln())
+            + self.sum_log_f)
+    }
+
+    /// Assembles the log-likelihood from the accumulated sums.
+    pub(crate) fn finish_loglik(&mut self) {
+        let n_all = (self.nobs + self.n_diffuse_obs) as f64;
+        self.loglik = -0.5 * (n_all * LN_2PI + self.sum_log_f_inf + self.sum_log_f + self.sum_v2_f);
     }
 }
 
@@ -340,7 +355,6 @@ where
     let mut st_f = 0.0;
     let mut st_pfilt = OMatrix::<f64, D, D>::zeros_generic(dim, dim);
 
-    let mut loglik = 0.0;
     for t in 0..n {
         if store {
             out.a_pred[t * m..(t + 1) * m].copy_from_slice(a.as_slice());
@@ -354,6 +368,7 @@ where
             steady = false;
         }
         let mut plain = !diffuse;
+        let was_steady = steady;
         if !steady && allow_steady {
             p_prev.copy_from(&ps);
         }
@@ -391,6 +406,7 @@ where
                     pi.ger(-1.0 / fi, &ki, &ki, 1.0);
                     tidy(&mut pi);
                     out.n_diffuse_obs += 1;
+                    out.sum_log_f_inf += fi.ln();
                     if store {
                         out.v[j] = v;
                         out.f[j] = f;
@@ -417,11 +433,8 @@ where
             if !steady {
                 ps.ger(-1.0 / f, &ks, &ks, 1.0);
             }
-            let v2f = v * v / f;
-            let lf = f.ln();
-            loglik -= 0.5 * (LN_2PI + lf + v2f);
-            out.sum_v2_f += v2f;
-            out.sum_log_f += lf;
+            out.sum_v2_f += v * v / f;
+            out.sum_log_f += f.ln();
             out.nobs += 1;
             if store {
                 out.v[j] = v;
@@ -457,6 +470,11 @@ where
         if steady {
             continue; // ps already holds the steady predicted covariance
         }
+        if was_steady {
+            // The update ran in steady mode (ps still holds the predicted
+            // covariance); the prediction must start from the filtered one.
+            ps.copy_from(&st_pfilt);
+        }
         let check_steady = allow_steady && plain && dt == 1.0;
         tmp.gemm(1.0, &tt, &ps, 0.0);
         ps.gemm(1.0, &tmp, &ttr, 0.0);
@@ -484,7 +502,7 @@ where
     if diffuse {
         out.diffuse_end = n;
     }
-    out.loglik = loglik;
+    out.finish_loglik();
     out
 }
 

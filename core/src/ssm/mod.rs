@@ -26,6 +26,8 @@ pub mod filter;
 pub mod fit;
 pub mod lyapunov;
 pub mod model;
+#[cfg(test)]
+mod proptests;
 mod scalar;
 pub mod smoother;
 pub mod spec;

@@ -5,9 +5,7 @@
 //! (smoother) and §2.9 (diffuse initialisation: a_2 = y_1, P_2 = sigma2_eps +
 //! sigma2_eta).
 
-use super::filter::{
-    DiffuseElem, ElemKind, FilterOptions, FilterOutput, Path, DIFFUSE_TOL, LN_2PI,
-};
+use super::filter::{DiffuseElem, ElemKind, FilterOptions, FilterOutput, Path, DIFFUSE_TOL};
 use super::model::{Observations, StateSpace};
 use super::smoother::SmootherOutput;
 
@@ -25,7 +23,6 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
     let allow_steady = opts.steady_tol > 0.0;
     let mut steady = false;
     let (mut st_k, mut st_f, mut st_pf) = (0.0, 0.0, 0.0);
-    let mut loglik = 0.0;
     let (mut sum_v2_f, mut sum_log_f, mut nobs) = (0.0, 0.0, 0usize);
 
     for t in 0..n {
@@ -43,6 +40,7 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
             steady = false;
         }
         let p_prev = ps;
+        let was_steady = steady;
         if !y.is_nan() {
             let v = y - z * a - d;
             let (k, f) = if steady {
@@ -59,6 +57,7 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
                 ps = ps.max(0.0);
                 pi -= ki * ki / fi;
                 out.n_diffuse_obs += 1;
+                out.sum_log_f_inf += fi.ln();
                 if store {
                     out.v[t] = v;
                     out.f[t] = f;
@@ -76,11 +75,8 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
                 if !steady {
                     ps = (ps - k * k / f).max(0.0);
                 }
-                let v2f = v * v / f;
-                let lf = f.ln();
-                loglik -= 0.5 * (LN_2PI + lf + v2f);
-                sum_v2_f += v2f;
-                sum_log_f += lf;
+                sum_v2_f += v * v / f;
+                sum_log_f += f.ln();
                 nobs += 1;
                 if store {
                     out.v[t] = v;
@@ -115,6 +111,9 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
         if steady {
             continue;
         }
+        if was_steady {
+            ps = st_pf; // the update ran in steady mode; predict from the filtered value
+        }
         ps = (tr * tr * ps + q).max(0.0);
         if diffuse {
             pi *= tr * tr;
@@ -134,10 +133,10 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
     if diffuse {
         out.diffuse_end = n;
     }
-    out.loglik = loglik;
     out.sum_v2_f = sum_v2_f;
     out.sum_log_f = sum_log_f;
     out.nobs = nobs;
+    out.finish_loglik();
     out
 }
 

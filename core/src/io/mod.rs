@@ -1,0 +1,198 @@
+//! Readers: one tag's samples from a long-format file (one row per sample).
+//!
+//! [`read_tag`] reads the rows of one tag from a CSV or Parquet file, chosen
+//! by the file name ([`Format::from_path`]), through a [`ColumnMap`] that
+//! names the tag, time and value columns (`tag`, `ts`, `value` by default),
+//! and returns [`TagSamples`]: times as i64 microseconds UTC, values as f64,
+//! sorted by time.
+//!
+//! # Stated rules
+//!
+//! - Rows of other tags are skipped without looking at their time or value
+//!   (a CSV row with the wrong number of fields or invalid UTF-8 is an error
+//!   wherever it is, since its tag cannot be read).
+//! - Rows may come in any order; the tag's samples are sorted by time, and
+//!   the number of rows that were out of order is counted
+//!   ([`ReadStats::n_out_of_order`]).
+//! - Two samples of the tag at the same time (after conversion to whole
+//!   microseconds) are an error naming the time and both rows.
+//! - An empty or null value is missing (NaN). A value that is NaN or
+//!   infinite is kept as missing (NaN) and counted ([`ReadStats::n_non_finite`]).
+//! - A quality column, if the file has one, is not read yet.
+//!
+//! # Times
+//!
+//! - Parquet: a timestamp column of any unit (s, ms, us, ns), with or without
+//!   a time zone (an Arrow timestamp with a zone is an instant, so the zone
+//!   does not change the value), or an Int64 / Int32 column of **epoch
+//!   seconds**.
+//! - CSV: RFC 3339 text (`2026-03-01T06:00:05Z`, `2026-03-01T07:00:05+01:00`,
+//!   fractions of a second allowed), or whole epoch seconds (`1772344805`).
+//! - Naive times (a Parquet timestamp without a zone, CSV text without an
+//!   offset such as `2026-03-01 06:00:05`) are read as UTC for now; site
+//!   time zones come with the pipeline configuration.
+//! - Sub-microsecond parts are dropped (rounded towards the past).
+//!
+//! ```
+//! use tagwright::io::{infer_period_us, read_tag, ColumnMap};
+//! let dir = tempfile::tempdir().unwrap();
+//! let path = dir.path().join("shift.csv");
+//! std::fs::write(&path, "tag,ts,value\n\
+//!     FT-101.PV,2026-03-01T06:00:10Z,12.5\n\
+//!     TT-204.PV,2026-03-01T06:00:00Z,81.0\n\
+//!     FT-101.PV,2026-03-01T06:00:00Z,12.0\n\
+//!     FT-101.PV,2026-03-01T06:00:05Z,\n").unwrap();
+//! let s = read_tag(&path, "FT-101.PV", &ColumnMap::default()).unwrap();
+//! assert_eq!(s.ts_us, [1_772_344_800_000_000, 1_772_344_805_000_000, 1_772_344_810_000_000]);
+//! assert_eq!(s.values[0], 12.0);
+//! assert!(s.values[1].is_nan());
+//! assert_eq!(infer_period_us(&s.ts_us), Some(5_000_000));
+//! ```
+
+mod error;
+mod long;
+
+use std::path::Path;
+
+pub use error::{BoxError, IoError, MAX_TAGS_LISTED};
+
+/// Shorthand for results of this module.
+pub type Result<T> = std::result::Result<T, IoError>;
+
+/// Names of the columns of a long-format file.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct ColumnMap {
+    /// Tag name column (string).
+    pub tag: String,
+    /// Time column.
+    pub time: String,
+    /// Value column (numeric).
+    pub value: String,
+}
+
+impl ColumnMap {
+    /// Default name of the tag column.
+    pub const DEFAULT_TAG: &'static str = "tag";
+    /// Default name of the time column.
+    pub const DEFAULT_TIME: &'static str = "ts";
+    /// Default name of the value column.
+    pub const DEFAULT_VALUE: &'static str = "value";
+}
+
+impl Default for ColumnMap {
+    fn default() -> Self {
+        ColumnMap {
+            tag: Self::DEFAULT_TAG.to_string(),
+            time: Self::DEFAULT_TIME.to_string(),
+            value: Self::DEFAULT_VALUE.to_string(),
+        }
+    }
+}
+
+/// Counts kept while reading, so that no rule acts silently.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct ReadStats {
+    /// Data rows in the file, all tags.
+    pub rows_read: u64,
+    /// Values of the tag that were empty or null (missing).
+    pub n_null: usize,
+    /// Values of the tag that were NaN or infinite (kept as missing).
+    pub n_non_finite: usize,
+    /// Rows of the tag with an earlier time than the row of the tag before them.
+    pub n_out_of_order: usize,
+}
+
+/// One tag's samples, sorted by time, times unique.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TagSamples {
+    /// The tag name.
+    pub tag: String,
+    /// Sample times, microseconds since 1970-01-01T00:00:00Z, strictly increasing.
+    pub ts_us: Vec<i64>,
+    /// Values, NaN where missing; same length as `ts_us`.
+    pub values: Vec<f64>,
+    /// What the reader counted.
+    pub stats: ReadStats,
+}
+
+impl TagSamples {
+    /// Number of samples.
+    pub fn len(&self) -> usize {
+        self.ts_us.len()
+    }
+
+    /// True when there is no sample.
+    pub fn is_empty(&self) -> bool {
+        self.ts_us.is_empty()
+    }
+
+    /// Number of missing (NaN) values.
+    pub fn n_missing(&self) -> usize {
+        self.values.iter().filter(|v| v.is_nan()).count()
+    }
+}
+
+/// File formats the readers know.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Format {
+    /// Comma-separated text with a header row.
+    Csv,
+    /// Apache Parquet.
+    Parquet,
+}
+
+impl Format {
+    /// The format a file name says (`.csv`; `.parquet` or `.pq`), case-insensitive.
+    pub fn from_path(path: &Path) -> Result<Format> {
+        let ext = path
+            .extension()
+            .map(|e| e.to_string_lossy().to_ascii_lowercase());
+        match ext.as_deref() {
+            Some("csv") => Ok(Format::Csv),
+            Some("parquet" | "pq") => Ok(Format::Parquet),
+            _ => Err(IoError::UnknownFormat {
+                path: path.to_path_buf(),
+                extension: ext,
+            }),
+        }
+    }
+}
+
+/// Reads the samples of `tag` from a long-format file (see the module
+/// documentation for the rules and the time formats).
+pub fn read_tag(path: &Path, tag: &str, columns: &ColumnMap) -> Result<TagSamples> {
+    match Format::from_path(path)? {
+        Format::Csv => long::read_csv(path, tag, columns),
+        Format::Parquet => long::read_parquet(path, tag, columns),
+    }
+}
+
+/// The median spacing of sorted times (the lower median for an even count),
+/// ignoring spacings that are not positive. `None` when there is no positive
+/// spacing (fewer than two distinct times).
+pub fn infer_period_us(ts: &[i64]) -> Option<i64> {
+    let mut d: Vec<i64> = ts
+        .windows(2)
+        .map(|w| w[1].saturating_sub(w[0]))
+        .filter(|&d| d > 0)
+        .collect();
+    if d.is_empty() {
+        return None;
+    }
+    let mid = (d.len() - 1) / 2;
+    let (_, m, _) = d.select_nth_unstable(mid);
+    Some(*m)
+}
+
+/// A time in microseconds UTC as RFC 3339 text (`2026-03-01T06:00:05Z`,
+/// with a fraction only when there is one); the raw number when it is out of
+/// the calendar's range.
+pub fn format_ts_us(us: i64) -> String {
+    match chrono::DateTime::<chrono::Utc>::from_timestamp_micros(us) {
+        Some(t) => t.to_rfc3339_opts(chrono::SecondsFormat::AutoSi, true),
+        None => format!("{us} us since 1970-01-01T00:00:00Z"),
+    }
+}
+
+#[cfg(test)]
+mod tests;
