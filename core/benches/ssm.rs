@@ -1,1 +1,84 @@
-fn main() {}
+//! Criterion benches of the state-space core: one local level series through
+//! every filter path (scalar, fixed-size, dynamic), ARMA(2,1) on the
+//! fixed-size and dynamic paths, and maximum-likelihood fits. The
+//! side-by-side comparison with statsmodels is `vs_statsmodels.sh`.
+
+use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion, Throughput};
+use std::hint::black_box;
+use tagwright::rng::Rng;
+use tagwright::ssm::{arma, filter, fit, smooth, FilterOptions, FitOptions, ModelSpec, Observations, Path};
+
+fn local_level_series(n: usize, seed: u64) -> Vec<f64> {
+    let mut rng = Rng::new(seed);
+    let mut level = 100.0;
+    (0..n)
+        .map(|_| {
+            level += 0.1f64.sqrt() * rng.normal();
+            level + rng.normal()
+        })
+        .collect()
+}
+
+fn filter_smooth(c: &mut Criterion) {
+    let n = 100_000;
+    let y = local_level_series(n, 1);
+    let obs = Observations::univariate(&y);
+    let ll = "local-level".parse::<ModelSpec>().unwrap().build(&[1.0, 0.1]).unwrap();
+    let mut g = c.benchmark_group("local_level_filter_smooth_100k");
+    g.throughput(Throughput::Elements(n as u64));
+    g.sample_size(20);
+    for path in [Path::Scalar, Path::Fixed, Path::General] {
+        g.bench_with_input(BenchmarkId::from_parameter(format!("{path:?}")), &path, |b, &path| {
+            b.iter(|| {
+                let f = filter(&ll, &obs, &FilterOptions { path, ..Default::default() }).unwrap();
+                black_box(smooth(&ll, &obs, &f))
+            })
+        });
+    }
+    g.bench_function("Scalar_no_steady_state", |b| {
+        b.iter(|| {
+            let f = filter(&ll, &obs, &FilterOptions { path: Path::Scalar, steady_tol: 0.0, store: true }).unwrap();
+            black_box(smooth(&ll, &obs, &f))
+        })
+    });
+    g.finish();
+
+    let mut rng = Rng::new(2);
+    let (x, _) = arma::simulate(&[0.5, -0.3], &[0.4], 1.0, n, &mut rng).unwrap();
+    let obs = Observations::univariate(&x);
+    let model = "arma(2,1)".parse::<ModelSpec>().unwrap().build(&[0.5, -0.3, 0.4, 1.0]).unwrap();
+    let mut g = c.benchmark_group("arma21_filter_smooth_100k");
+    g.throughput(Throughput::Elements(n as u64));
+    g.sample_size(20);
+    for path in [Path::Fixed, Path::General] {
+        g.bench_with_input(BenchmarkId::from_parameter(format!("{path:?}")), &path, |b, &path| {
+            b.iter(|| {
+                let f = filter(&model, &obs, &FilterOptions { path, ..Default::default() }).unwrap();
+                black_box(smooth(&model, &obs, &f))
+            })
+        });
+    }
+    g.finish();
+}
+
+fn fits(c: &mut Criterion) {
+    let y = local_level_series(10_000, 3);
+    let obs = Observations::univariate(&y);
+    let mut g = c.benchmark_group("fit_10k");
+    g.sample_size(20);
+    let ll: ModelSpec = "local-level".parse().unwrap();
+    g.bench_function("local_level", |b| b.iter(|| black_box(fit(&ll, &obs, &FitOptions::default()).unwrap())));
+    let mut rng = Rng::new(4);
+    let (x, _) = arma::simulate(&[0.5, -0.3], &[0.4], 1.0, 10_000, &mut rng).unwrap();
+    let xo = Observations::univariate(&x);
+    let am: ModelSpec = "arma(2,1)".parse().unwrap();
+    for path in [Path::Fixed, Path::General] {
+        g.bench_with_input(BenchmarkId::new("arma21", format!("{path:?}")), &path, |b, &path| {
+            b.iter(|| black_box(fit(&am, &xo, &FitOptions { path, ..Default::default() }).unwrap()))
+        });
+    }
+    g.finish();
+}
+
+criterion_group!(benches, filter_smooth, fits);
+criterion_main!(benches);

@@ -24,10 +24,7 @@ impl Rng {
             z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
             z ^ (z >> 31)
         };
-        Rng {
-            s: [next(), next(), next(), next()],
-            spare: None,
-        }
+        Rng { s: [next(), next(), next(), next()], spare: None }
     }
 
     /// Next 64 random bits (xoshiro256**, Blackman & Vigna 2018).

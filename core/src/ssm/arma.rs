@@ -73,9 +73,7 @@ fn step_down(phi: &[f64]) -> std::result::Result<Vec<f64>, (usize, f64)> {
             return Err((k, r));
         }
         let denom = 1.0 - r * r;
-        let prev: Vec<f64> = (0..k - 1)
-            .map(|j| (a[j] + r * a[k - 2 - j]) / denom)
-            .collect();
+        let prev: Vec<f64> = (0..k - 1).map(|j| (a[j] + r * a[k - 2 - j]) / denom).collect();
         a[..k - 1].copy_from_slice(&prev);
     }
     Ok(pacf)
@@ -98,25 +96,17 @@ fn step_up(pacf: &[f64], out: &mut [f64]) {
 
 /// Errors unless phi is stationary (all roots of 1 - sum phi_j z^j outside the unit circle).
 pub fn check_stationary(phi: &[f64]) -> Result<()> {
-    step_down(phi)
-        .map(|_| ())
-        .map_err(|(lag, pacf)| SsmError::NonStationary {
-            phi: phi.to_vec(),
-            lag,
-            pacf,
-        })
+    step_down(phi).map(|_| ()).map_err(|(lag, pacf)| SsmError::NonStationary { phi: phi.to_vec(), lag, pacf })
 }
 
 /// Errors unless theta is invertible (all roots of 1 + sum theta_j z^j outside the unit circle).
 pub fn check_invertible(theta: &[f64]) -> Result<()> {
     let neg: Vec<f64> = theta.iter().map(|t| -t).collect();
-    step_down(&neg)
-        .map(|_| ())
-        .map_err(|(lag, pacf)| SsmError::NonInvertible {
-            theta: theta.to_vec(),
-            lag,
-            pacf: -pacf,
-        })
+    step_down(&neg).map(|_| ()).map_err(|(lag, pacf)| SsmError::NonInvertible {
+        theta: theta.to_vec(),
+        lag,
+        pacf: -pacf,
+    })
 }
 
 /// Map unconstrained reals to stationary AR coefficients:
@@ -128,11 +118,7 @@ pub fn constrain_stationary(u: &[f64], out: &mut [f64]) {
 
 /// Inverse of [`constrain_stationary`]; errors if phi is not stationary.
 pub fn unconstrain_stationary(phi: &[f64]) -> Result<Vec<f64>> {
-    let pacf = step_down(phi).map_err(|(lag, pacf)| SsmError::NonStationary {
-        phi: phi.to_vec(),
-        lag,
-        pacf,
-    })?;
+    let pacf = step_down(phi).map_err(|(lag, pacf)| SsmError::NonStationary { phi: phi.to_vec(), lag, pacf })?;
     Ok(pacf.iter().map(|&r| r / (1.0 - r * r).sqrt()).collect())
 }
 
@@ -152,12 +138,7 @@ pub fn unconstrain_invertible(theta: &[f64]) -> Result<Vec<f64>> {
 /// Theoretical autocovariances gamma(0..=max_lag) of the ARMA process,
 /// computed from the state-space form: gamma(h) = Z T^h P Z' with P the
 /// stationary state covariance.
-pub fn autocovariances(
-    phi: &[f64],
-    theta: &[f64],
-    sigma2: f64,
-    max_lag: usize,
-) -> Result<Vec<f64>> {
+pub fn autocovariances(phi: &[f64], theta: &[f64], sigma2: f64, max_lag: usize) -> Result<Vec<f64>> {
     check_stationary(phi)?;
     let (t, sel) = companion(phi, theta);
     let rqr = &sel * sel.transpose() * sigma2;

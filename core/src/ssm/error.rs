@@ -15,19 +15,15 @@ pub enum SsmError {
     #[error("variance `{name}` must be >= 0, got {value}")]
     NegativeVariance { name: String, value: f64 },
     /// The AR polynomial 1 - phi_1 z - ... - phi_p z^p has a root on or inside the unit circle.
-    #[error("AR coefficients {phi:?} are not stationary (partial autocorrelation {pacf} at lag {lag} is outside (-1, 1))")]
-    NonStationary {
-        phi: Vec<f64>,
-        lag: usize,
-        pacf: f64,
-    },
+    #[error(
+        "AR coefficients {phi:?} are not stationary (partial autocorrelation {pacf} at lag {lag} is outside (-1, 1))"
+    )]
+    NonStationary { phi: Vec<f64>, lag: usize, pacf: f64 },
     /// The MA polynomial 1 + theta_1 z + ... + theta_q z^q has a root on or inside the unit circle.
-    #[error("MA coefficients {theta:?} are not invertible (partial autocorrelation {pacf} at lag {lag} is outside (-1, 1))")]
-    NonInvertible {
-        theta: Vec<f64>,
-        lag: usize,
-        pacf: f64,
-    },
+    #[error(
+        "MA coefficients {theta:?} are not invertible (partial autocorrelation {pacf} at lag {lag} is outside (-1, 1))"
+    )]
+    NonInvertible { theta: Vec<f64>, lag: usize, pacf: f64 },
     /// An ARMA order above [`crate::ssm::MAX_ARMA_ORDER`].
     #[error("ARMA order ({p},{q}) exceeds the cap of {cap} for p and q")]
     OrderTooHigh { p: usize, q: usize, cap: usize },
@@ -36,27 +32,15 @@ pub enum SsmError {
     BadSpec { spec: String, reason: String },
     /// A parameter vector of the wrong length for the model.
     #[error("model `{model}` takes {expected} parameters ({names}), got {got}")]
-    ParameterCount {
-        model: String,
-        expected: usize,
-        got: usize,
-        names: String,
-    },
+    ParameterCount { model: String, expected: usize, got: usize, names: String },
     /// Fewer observations than the fit needs.
     #[error("series has {n_obs} usable observations; fitting {n_params} parameters with {n_diffuse} diffuse states needs at least {needed}")]
-    TooShort {
-        n_obs: usize,
-        n_params: usize,
-        n_diffuse: usize,
-        needed: usize,
-    },
+    TooShort { n_obs: usize, n_params: usize, n_diffuse: usize, needed: usize },
     /// No observation at all.
     #[error("series has no observed (finite) values")]
     AllMissing,
     /// Every observation has the same value, so no variance can be estimated.
-    #[error(
-        "series is constant (every observation equals {value}); its variances cannot be estimated"
-    )]
+    #[error("series is constant (every observation equals {value}); its variances cannot be estimated")]
     Constant { value: f64 },
     /// An observation that is infinite (NaN marks a missing value and is allowed).
     #[error("observation {index} is not finite ({value}); use NaN for a missing value")]

@@ -50,9 +50,7 @@
 //! state is updated (DK §4.3.4). Any missing value, weight or step change
 //! resumes the full recursion.
 
-use nalgebra::{
-    allocator::Allocator, Const, DMatrix, DVector, DefaultAllocator, Dim, Dyn, OMatrix, OVector, U1,
-};
+use nalgebra::{allocator::Allocator, Const, DMatrix, DVector, DefaultAllocator, Dim, Dyn, OMatrix, OVector, U1};
 
 use super::model::{Observations, StateSpace};
 use super::{scalar, Result};
@@ -89,21 +87,14 @@ pub struct FilterOptions {
 
 impl Default for FilterOptions {
     fn default() -> Self {
-        FilterOptions {
-            store: true,
-            steady_tol: 1e-11,
-            path: Path::Auto,
-        }
+        FilterOptions { store: true, steady_tol: 1e-11, path: Path::Auto }
     }
 }
 
 impl FilterOptions {
     /// Likelihood only: nothing stored.
     pub fn loglik_only() -> Self {
-        FilterOptions {
-            store: false,
-            ..Default::default()
-        }
+        FilterOptions { store: false, ..Default::default() }
     }
 }
 
@@ -179,25 +170,42 @@ pub struct FilterOutput {
 }
 
 impl FilterOutput {
-    pub(crate) fn allocate(n: usize, p: usize, m: usize, store: bool, path: Path) -> Self {
-        let mut out = FilterOutput {
+    /// Prepares the output for a run of n times, reusing the buffers'
+    /// capacity (no new pages once they are large enough). Every stored
+    /// entry is overwritten by the run, so stale values never leak.
+    pub(crate) fn reset(&mut self, n: usize, p: usize, m: usize, store: bool, path: Path) {
+        *self = FilterOutput {
             n,
             p,
             m,
             path,
+            a_pred: std::mem::take(&mut self.a_pred),
+            p_pred: std::mem::take(&mut self.p_pred),
+            a_filt: std::mem::take(&mut self.a_filt),
+            p_filt: std::mem::take(&mut self.p_filt),
+            v: std::mem::take(&mut self.v),
+            f: std::mem::take(&mut self.f),
+            k: std::mem::take(&mut self.k),
+            kind: std::mem::take(&mut self.kind),
+            p_inf_pred: std::mem::take(&mut self.p_inf_pred),
+            diffuse: std::mem::take(&mut self.diffuse),
             ..Default::default()
         };
-        if store {
-            out.a_pred = vec![0.0; n * m];
-            out.p_pred = vec![0.0; n * m * m];
-            out.a_filt = vec![0.0; n * m];
-            out.p_filt = vec![0.0; n * m * m];
-            out.v = vec![f64::NAN; n * p];
-            out.f = vec![f64::NAN; n * p];
-            out.k = vec![0.0; n * p * m];
-            out.kind = vec![ElemKind::Missing; n * p];
+        let (len_nm, len_nmm, len_np) = if store { (n * m, n * m * m, n * p) } else { (0, 0, 0) };
+        for (v, len) in [
+            (&mut self.a_pred, len_nm),
+            (&mut self.p_pred, len_nmm),
+            (&mut self.a_filt, len_nm),
+            (&mut self.p_filt, len_nmm),
+            (&mut self.v, len_np),
+            (&mut self.f, len_np),
+            (&mut self.k, len_np * m),
+        ] {
+            v.resize(len, 0.0);
         }
-        out
+        self.kind.resize(len_np, ElemKind::Missing);
+        self.p_inf_pred.clear();
+        self.diffuse.clear();
     }
 
     /// True if states and covariances were stored.
@@ -227,10 +235,7 @@ impl FilterOutput {
     pub fn concentrated_loglik(&self) -> f64 {
         let n_all = (self.nobs + self.n_diffuse_obs) as f64;
         let n = self.nobs as f64;
-        -0.5 * (n_all * LN_2PI
-            + self.sum_log_f_inf
-            + n * (1.0 + self.concentrated_scale().ln())
-            + self.sum_log_f)
+        -0.5 * (n_all * LN_2PI + self.sum_log_f_inf + n * (1.0 + self.concentrated_scale().ln()) + self.sum_log_f)
     }
 
     /// Assembles the log-likelihood from the accumulated sums.
@@ -242,29 +247,30 @@ impl FilterOutput {
 
 /// Runs the Kalman filter. Errors on infinite observations or bad steps;
 /// shapes must match (panics otherwise).
-pub fn filter(
-    model: &StateSpace,
-    obs: &Observations,
-    opts: &FilterOptions,
-) -> Result<FilterOutput> {
+pub fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOptions) -> Result<FilterOutput> {
+    let mut out = FilterOutput::default();
+    filter_into(model, obs, opts, &mut out)?;
+    Ok(out)
+}
+
+/// [`filter`] into an existing output, reusing its buffers: a worker that
+/// cleans many tags keeps one `FilterOutput` and pays for its pages once.
+pub fn filter_into(model: &StateSpace, obs: &Observations, opts: &FilterOptions, out: &mut FilterOutput) -> Result<()> {
     obs.validate()?;
-    assert_eq!(
-        obs.p,
-        model.obs_dim(),
-        "observations have p elements, the model expects another p"
-    );
+    assert_eq!(obs.p, model.obs_dim(), "observations have p elements, the model expects another p");
     let m = model.state_dim();
-    Ok(match resolve_path(opts.path, m, obs.p) {
-        Path::Scalar => scalar::filter(model, obs, opts),
+    match resolve_path(opts.path, m, obs.p) {
+        Path::Scalar => scalar::filter(model, obs, opts, out),
         Path::Fixed => match m {
-            1 => run(Const::<1>, model, obs, opts, Path::Fixed),
-            2 => run(Const::<2>, model, obs, opts, Path::Fixed),
-            3 => run(Const::<3>, model, obs, opts, Path::Fixed),
-            4 => run(Const::<4>, model, obs, opts, Path::Fixed),
-            _ => run(Dyn(m), model, obs, opts, Path::General),
+            1 => run(Const::<1>, model, obs, opts, Path::Fixed, out),
+            2 => run(Const::<2>, model, obs, opts, Path::Fixed, out),
+            3 => run(Const::<3>, model, obs, opts, Path::Fixed, out),
+            4 => run(Const::<4>, model, obs, opts, Path::Fixed, out),
+            _ => run(Dyn(m), model, obs, opts, Path::General, out),
         },
-        _ => run(Dyn(m), model, obs, opts, Path::General),
-    })
+        _ => run(Dyn(m), model, obs, opts, Path::General, out),
+    }
+    Ok(())
 }
 
 /// The path that will actually run for a model of m states and p elements.
@@ -293,6 +299,15 @@ where
     OVector::<f64, D>::from_iterator_generic(dim, U1, x)
 }
 
+/// Largest diagonal element, without allocating.
+#[inline]
+fn max_diag<D: Dim>(p: &OMatrix<f64, D, D>) -> f64
+where
+    DefaultAllocator: Allocator<D, D>,
+{
+    (0..p.nrows()).fold(0.0, |m, i| m.max(p[(i, i)]))
+}
+
 /// Symmetrise and clear negative diagonal round-off.
 pub(crate) fn tidy<D: Dim>(p: &mut OMatrix<f64, D, D>)
 where
@@ -311,13 +326,7 @@ where
     }
 }
 
-fn run<D: Dim>(
-    dim: D,
-    model: &StateSpace,
-    obs: &Observations,
-    opts: &FilterOptions,
-    path: Path,
-) -> FilterOutput
+fn run<D: Dim>(dim: D, model: &StateSpace, obs: &Observations, opts: &FilterOptions, path: Path, out: &mut FilterOutput)
 where
     DefaultAllocator: Allocator<D, D> + Allocator<D>,
 {
@@ -325,11 +334,9 @@ where
     let p = obs.p;
     let n = obs.len();
     let store = opts.store;
-    let mut out = FilterOutput::allocate(n, p, m, store, path);
+    out.reset(n, p, m, store, path);
 
-    let zrows: Vec<OVector<f64, D>> = (0..p)
-        .map(|i| ovec(dim, model.z.row(i).iter().cloned()))
-        .collect();
+    let zrows: Vec<OVector<f64, D>> = (0..p).map(|i| ovec(dim, model.z.row(i).iter().cloned())).collect();
     let c = ovec(dim, model.c.iter().cloned());
     let mut a = ovec(dim, model.a1.iter().cloned());
     let mut ps = omat(dim, &model.p1_star);
@@ -353,9 +360,62 @@ where
     let mut steady = false;
     let mut st_k = OVector::<f64, D>::zeros_generic(dim, U1);
     let mut st_f = 0.0;
+    let mut st_logf = 0.0;
+    let mut st_gain = OVector::<f64, D>::zeros_generic(dim, U1);
     let mut st_pfilt = OMatrix::<f64, D, D>::zeros_generic(dim, dim);
 
-    for t in 0..n {
+    let mut t = 0;
+    while t < n {
+        if steady {
+            // Steady state (p = 1): K, F and P are fixed; only the state
+            // moves, while the steps are plain (observed, unit weight, one period).
+            let start = t;
+            let mut sum_v2 = 0.0;
+            let d0 = model.d[0];
+            let (zs, gs, ts, cs) = (zrows[0].as_slice(), st_gain.as_slice(), tt.as_slice(), c.as_slice());
+            while t < n {
+                let y = obs.y[t];
+                if y.is_nan() || obs.weight(t, 0) != 1.0 || obs.step(t) != 1.0 {
+                    break;
+                }
+                // Plain slices: for small dynamic m this avoids per-call overhead.
+                let av = a.as_mut_slice();
+                let v = y - zs.iter().zip(av.iter()).map(|(z, a)| z * a).sum::<f64>() - d0;
+                if store {
+                    out.a_pred[t * m..(t + 1) * m].copy_from_slice(av);
+                    out.p_pred[t * m * m..(t + 1) * m * m].copy_from_slice(ps.as_slice());
+                    out.v[t] = v;
+                    out.f[t] = st_f;
+                    out.k[t * m..(t + 1) * m].copy_from_slice(st_k.as_slice());
+                    out.kind[t] = ElemKind::Regular;
+                }
+                for (aj, gj) in av.iter_mut().zip(gs) {
+                    *aj += gj * v;
+                }
+                if store {
+                    out.a_filt[t * m..(t + 1) * m].copy_from_slice(av);
+                    out.p_filt[t * m * m..(t + 1) * m * m].copy_from_slice(st_pfilt.as_slice());
+                }
+                // a <- T a + c (T column-major).
+                let tv = tmpv.as_mut_slice();
+                tv.copy_from_slice(cs);
+                for (j, aj) in av.iter().enumerate() {
+                    for (ti, col) in tv.iter_mut().zip(&ts[j * m..(j + 1) * m]) {
+                        *ti += col * aj;
+                    }
+                }
+                av.copy_from_slice(tv);
+                sum_v2 += v * v;
+                t += 1;
+            }
+            let count = t - start;
+            out.sum_v2_f += sum_v2 / st_f;
+            out.sum_log_f += count as f64 * st_logf;
+            out.nobs += count;
+            if t == n {
+                break;
+            }
+        }
         if store {
             out.a_pred[t * m..(t + 1) * m].copy_from_slice(a.as_slice());
             out.p_pred[t * m * m..(t + 1) * m * m].copy_from_slice(ps.as_slice());
@@ -377,6 +437,12 @@ where
             let y = obs.y[j];
             if y.is_nan() {
                 plain = false;
+                if store {
+                    out.v[j] = f64::NAN;
+                    out.f[j] = f64::NAN;
+                    out.k[j * m..(j + 1) * m].fill(0.0);
+                    out.kind[j] = ElemKind::Missing;
+                }
                 continue;
             }
             let w = obs.weight(t, i);
@@ -412,19 +478,16 @@ where
                         out.f[j] = f;
                         out.k[j * m..(j + 1) * m].copy_from_slice(ks.as_slice());
                         out.kind[j] = ElemKind::Diffuse;
-                        out.diffuse.push(DiffuseElem {
-                            t,
-                            i,
-                            f_inf: fi,
-                            k_inf: ki.as_slice().to_vec(),
-                        });
+                        out.diffuse.push(DiffuseElem { t, i, f_inf: fi, k_inf: ki.as_slice().to_vec() });
                     }
                     continue;
                 }
             }
-            if !(f > 1e-13 * (h + ps.diagonal().amax()).max(f64::MIN_POSITIVE)) {
+            if !(f > 1e-13 * (h + max_diag(&ps)).max(f64::MIN_POSITIVE)) {
                 if store {
                     out.v[j] = v;
+                    out.f[j] = f;
+                    out.k[j * m..(j + 1) * m].fill(0.0);
                     out.kind[j] = ElemKind::Degenerate;
                 }
                 continue;
@@ -434,7 +497,7 @@ where
                 ps.ger(-1.0 / f, &ks, &ks, 1.0);
             }
             out.sum_v2_f += v * v / f;
-            out.sum_log_f += f.ln();
+            out.sum_log_f += if steady { st_logf } else { f.ln() };
             out.nobs += 1;
             if store {
                 out.v[j] = v;
@@ -467,6 +530,7 @@ where
         tmpv.gemv(1.0, &tt, &a, 0.0);
         a.copy_from(&tmpv);
         a += &c;
+        t += 1;
         if steady {
             continue; // ps already holds the steady predicted covariance
         }
@@ -490,9 +554,12 @@ where
             p_prev -= &ps;
             if p_prev.amax() <= opts.steady_tol * scale {
                 steady = true;
-                out.steady_from.get_or_insert(t + 1);
+                out.steady_from.get_or_insert(t);
                 st_k.gemv(1.0, &ps, &zrows[0], 0.0);
                 st_f = zrows[0].dot(&st_k) + model.h[0];
+                st_logf = st_f.ln();
+                st_gain.copy_from(&st_k);
+                st_gain /= st_f;
                 // Filtered covariance in the steady state: P - K K'/F.
                 st_pfilt.copy_from(&ps);
                 st_pfilt.ger(-1.0 / st_f, &st_k, &st_k, 1.0);
@@ -503,7 +570,6 @@ where
         out.diffuse_end = n;
     }
     out.finish_loglik();
-    out
 }
 
 /// Copies a stored m x m block into a dynamic matrix (for callers outside the hot loop).

@@ -56,13 +56,7 @@ pub struct FitOptions {
 
 impl Default for FitOptions {
     fn default() -> Self {
-        FitOptions {
-            max_iter: 200,
-            grad_tol: 1e-6,
-            path: Path::Auto,
-            start: None,
-            std_errors: true,
-        }
+        FitOptions { max_iter: 200, grad_tol: 1e-6, path: Path::Auto, start: None, std_errors: true }
     }
 }
 
@@ -100,15 +94,7 @@ pub struct FitResult {
 /// Log-likelihood of the model at the given parameters.
 pub fn loglik(spec: &ModelSpec, params: &[f64], obs: &Observations, path: Path) -> Result<f64> {
     let model = spec.build(params)?;
-    Ok(filter(
-        &model,
-        obs,
-        &FilterOptions {
-            path,
-            ..FilterOptions::loglik_only()
-        },
-    )?
-    .loglik)
+    Ok(filter(&model, obs, &FilterOptions { path, ..FilterOptions::loglik_only() })?.loglik)
 }
 
 /// The map between unconstrained optimiser variables and model parameters,
@@ -130,12 +116,7 @@ impl Transform {
             let s = kinds.iter().position(|k| *k == want)?;
             Some((s, kinds.iter().filter(|k| **k == want).count()))
         };
-        Some(Transform {
-            scale,
-            ar: block(ParamKind::Ar),
-            ma: block(ParamKind::Ma),
-            kinds,
-        })
+        Some(Transform { scale, ar: block(ParamKind::Ar), ma: block(ParamKind::Ma), kinds })
     }
 
     /// Free dimension (all parameters but the scale).
@@ -186,10 +167,7 @@ impl Transform {
                 continue;
             }
             u.push(match kind {
-                ParamKind::Variance => (params[i] / scale)
-                    .max(1e-300)
-                    .ln()
-                    .clamp(-LOG_RATIO_BOUND, LOG_RATIO_BOUND),
+                ParamKind::Variance => (params[i] / scale).max(1e-300).ln().clamp(-LOG_RATIO_BOUND, LOG_RATIO_BOUND),
                 ParamKind::Ar => ar_u[i - self.ar.map_or(0, |a| a.0)],
                 ParamKind::Ma => ma_u[i - self.ma.map_or(0, |a| a.0)],
             });
@@ -216,14 +194,7 @@ impl Problem<'_> {
         let Ok(model) = self.spec.build(&params) else {
             return 1e100;
         };
-        match filter(
-            &model,
-            self.obs,
-            &FilterOptions {
-                path: self.path,
-                ..FilterOptions::loglik_only()
-            },
-        ) {
+        match filter(&model, self.obs, &FilterOptions { path: self.path, ..FilterOptions::loglik_only() }) {
             Ok(out) if out.nobs > 0 => {
                 let ll = out.concentrated_loglik();
                 if ll.is_finite() {
@@ -268,12 +239,7 @@ impl Gradient for Problem<'_> {
     }
 }
 
-fn run_bfgs(
-    problem: &Problem,
-    x0: Vec<f64>,
-    max_iter: u64,
-    grad_tol: f64,
-) -> Option<(Vec<f64>, u64)> {
+fn run_bfgs(problem: &Problem, x0: Vec<f64>, max_iter: u64, grad_tol: f64) -> Option<(Vec<f64>, u64)> {
     let k = x0.len();
     let mut h0 = vec![vec![0.0; k]; k];
     for (i, row) in h0.iter_mut().enumerate() {
@@ -300,10 +266,7 @@ fn run_nelder_mead(problem: &Problem, x0: &[f64], max_iter: u64) -> Option<(Vec<
         simplex.push(x);
     }
     let solver = NelderMead::new(simplex).with_sd_tolerance(1e-12).ok()?;
-    let res = Executor::new(ProblemRef(problem), solver)
-        .configure(|s| s.max_iters(max_iter * 5))
-        .run()
-        .ok()?;
+    let res = Executor::new(ProblemRef(problem), solver).configure(|s| s.max_iters(max_iter * 5)).run().ok()?;
     let state = res.state();
     Some((state.get_best_param()?.clone(), state.get_iter()))
 }
@@ -338,11 +301,7 @@ fn summarise(obs: &Observations) -> DataSummary {
     let vals: Vec<f64> = obs.y.iter().copied().filter(|v| v.is_finite()).collect();
     let first = vals.first().copied().unwrap_or(f64::NAN);
     let constant = vals.iter().all(|v| *v == first);
-    DataSummary {
-        n_obs: vals.len(),
-        first,
-        constant,
-    }
+    DataSummary { n_obs: vals.len(), first, constant }
 }
 
 /// Fits the model by maximum likelihood.
@@ -355,32 +314,19 @@ pub fn fit(spec: &ModelSpec, obs: &Observations, opts: &FitOptions) -> Result<Fi
         return Err(SsmError::AllMissing);
     }
     if summary.constant {
-        return Err(SsmError::Constant {
-            value: summary.first,
-        });
+        return Err(SsmError::Constant { value: summary.first });
     }
     let n_diffuse = spec.n_diffuse();
     let needed = k + n_diffuse + 1;
     if summary.n_obs < needed {
-        return Err(SsmError::TooShort {
-            n_obs: summary.n_obs,
-            n_params: k,
-            n_diffuse,
-            needed,
-        });
+        return Err(SsmError::TooShort { n_obs: summary.n_obs, n_params: k, n_diffuse, needed });
     }
     let tr = Transform::new(spec).ok_or_else(|| SsmError::NotFittable {
         model: spec.to_string(),
         reason: "it has no variance parameter".into(),
     })?;
-    let problem = Problem {
-        spec,
-        tr: &tr,
-        obs,
-        path: opts.path,
-        nobs: summary.n_obs as f64,
-        evals: std::cell::Cell::new(0),
-    };
+    let problem =
+        Problem { spec, tr: &tr, obs, path: opts.path, nobs: summary.n_obs as f64, evals: std::cell::Cell::new(0) };
 
     // Start: given values, or the best of a few variance ratios with AR/MA at zero.
     let x0 = match &opts.start {
@@ -390,16 +336,12 @@ pub fn fit(spec: &ModelSpec, obs: &Observations, opts: &FitOptions) -> Result<Fi
         }
         None => {
             let mut best = (f64::INFINITY, vec![0.0; tr.dim()]);
-            for log_ratio in [-6.9, -4.6, -2.3, 0.0, 2.3] {
+            let has_ratio = tr.kinds.iter().filter(|k| **k == ParamKind::Variance).count() > 1;
+            let grid: &[f64] = if has_ratio { &[-6.9, -4.6, -2.3, 0.0, 2.3] } else { &[0.0] };
+            for &log_ratio in grid {
                 let u: Vec<f64> = (0..tr.kinds.len())
                     .filter(|&i| i != tr.scale)
-                    .map(|i| {
-                        if tr.kinds[i] == ParamKind::Variance {
-                            log_ratio
-                        } else {
-                            0.0
-                        }
-                    })
+                    .map(|i| if tr.kinds[i] == ParamKind::Variance { log_ratio } else { 0.0 })
                     .collect();
                 let f = problem.value(&u);
                 if f < best.0 {
@@ -422,8 +364,7 @@ pub fn fit(spec: &ModelSpec, obs: &Observations, opts: &FitOptions) -> Result<Fi
         if max_abs(&problem.grad(&u)) > opts.grad_tol {
             if let Some((x, it)) = run_nelder_mead(&problem, &u, opts.max_iter) {
                 iters += it;
-                let (x, it2) =
-                    run_bfgs(&problem, x.clone(), opts.max_iter, opts.grad_tol).unwrap_or((x, 0));
+                let (x, it2) = run_bfgs(&problem, x.clone(), opts.max_iter, opts.grad_tol).unwrap_or((x, 0));
                 if problem.value(&x) <= problem.value(&u) {
                     u = x;
                 }
@@ -437,24 +378,13 @@ pub fn fit(spec: &ModelSpec, obs: &Observations, opts: &FitOptions) -> Result<Fi
             *x = 0.0;
         }
     }
-    let max_gradient = if u.is_empty() {
-        0.0
-    } else {
-        max_abs(&problem.grad(&u))
-    };
+    let max_gradient = if u.is_empty() { 0.0 } else { max_abs(&problem.grad(&u)) };
 
     // Back to the model's parameters: scale the variances by sigma2_hat.
     let mut params = vec![0.0; k];
     tr.constrain(&u, &mut params);
     let model = spec.build(&params)?;
-    let out = filter(
-        &model,
-        obs,
-        &FilterOptions {
-            path: opts.path,
-            ..FilterOptions::loglik_only()
-        },
-    )?;
+    let out = filter(&model, obs, &FilterOptions { path: opts.path, ..FilterOptions::loglik_only() })?;
     let scale = out.concentrated_scale();
     for (p, kind) in params.iter_mut().zip(&tr.kinds) {
         if *kind == ParamKind::Variance {
@@ -462,11 +392,7 @@ pub fn fit(spec: &ModelSpec, obs: &Observations, opts: &FitOptions) -> Result<Fi
         }
     }
     let loglik = loglik(spec, &params, obs, opts.path)?;
-    let std_errors = if opts.std_errors {
-        std_errors(spec, &params, obs, opts.path)
-    } else {
-        vec![None; k]
-    };
+    let std_errors = if opts.std_errors { std_errors(spec, &params, obs, opts.path) } else { vec![None; k] };
     iterations = iterations.max(u64::from(!u.is_empty()));
     Ok(FitResult {
         model: spec.to_string(),
@@ -476,9 +402,7 @@ pub fn fit(spec: &ModelSpec, obs: &Observations, opts: &FitOptions) -> Result<Fi
         loglik,
         aic: -2.0 * loglik + 2.0 * (k + n_diffuse) as f64,
         n: obs.len(),
-        n_missing: (0..obs.len())
-            .filter(|&t| (0..obs.p).all(|i| obs.y[t * obs.p + i].is_nan()))
-            .count(),
+        n_missing: (0..obs.len()).filter(|&t| (0..obs.p).all(|i| obs.y[t * obs.p + i].is_nan())).count(),
         nobs: out.nobs,
         converged: max_gradient <= opts.grad_tol && loglik.is_finite(),
         iterations,
@@ -488,23 +412,12 @@ pub fn fit(spec: &ModelSpec, obs: &Observations, opts: &FitOptions) -> Result<Fi
 }
 
 fn max_abs(x: &[f64]) -> f64 {
-    x.iter().fold(0.0, |m, v| {
-        if v.is_nan() {
-            f64::INFINITY
-        } else {
-            m.max(v.abs())
-        }
-    })
+    x.iter().fold(0.0, |m, v| if v.is_nan() { f64::INFINITY } else { m.max(v.abs()) })
 }
 
 /// Standard errors from the inverse of minus the numerical Hessian of the
 /// log-likelihood in the model's parameters.
-fn std_errors(
-    spec: &ModelSpec,
-    params: &[f64],
-    obs: &Observations,
-    path: Path,
-) -> Vec<Option<f64>> {
+fn std_errors(spec: &ModelSpec, params: &[f64], obs: &Observations, path: Path) -> Vec<Option<f64>> {
     let k = params.len();
     let none = vec![None; k];
     let f = |x: &[f64]| loglik(spec, x, obs, path).ok().filter(|v| v.is_finite());
@@ -531,9 +444,7 @@ fn std_errors(
                 x[j] = params[j];
                 v
             };
-            let (Some(a), Some(b), Some(c), Some(d)) =
-                (g(1.0, 1.0), g(1.0, -1.0), g(-1.0, 1.0), g(-1.0, -1.0))
-            else {
+            let (Some(a), Some(b), Some(c), Some(d)) = (g(1.0, 1.0), g(1.0, -1.0), g(-1.0, 1.0), g(-1.0, -1.0)) else {
                 return none;
             };
             let v = (a - b - c + d) / (4.0 * h[i] * h[j]);
@@ -546,7 +457,5 @@ fn std_errors(
         return none;
     };
     let cov = chol.inverse();
-    (0..k)
-        .map(|i| Some(cov[(i, i)].sqrt()).filter(|v| v.is_finite()))
-        .collect()
+    (0..k).map(|i| Some(cov[(i, i)].sqrt()).filter(|v| v.is_finite())).collect()
 }

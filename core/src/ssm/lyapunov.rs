@@ -43,11 +43,7 @@ mod tests {
         let w = &r * r.transpose() * 2.0;
         let p = solve_discrete_lyapunov(&t, &w).unwrap();
         let resid = &p - (&t * &p * t.transpose() + &w);
-        assert!(
-            resid.amax() < 1e-12 * p.amax() * 9.0,
-            "residual {}",
-            resid.amax()
-        );
+        assert!(resid.amax() < 1e-12 * p.amax() * 9.0, "residual {}", resid.amax());
     }
 
     #[test]

@@ -36,8 +36,8 @@ mod tests;
 
 pub use arma::MAX_ARMA_ORDER;
 pub use error::{Result, SsmError};
-pub use filter::{filter, FilterOptions, FilterOutput, Path};
+pub use filter::{filter, filter_into, FilterOptions, FilterOutput, Path};
 pub use fit::{fit, loglik, FitOptions, FitResult};
 pub use model::{Observations, StateSpace, StepRule};
-pub use smoother::{smooth, SmootherOutput};
+pub use smoother::{smooth, smooth_into, SmootherOutput};
 pub use spec::{Component, ModelSpec, ParamKind};

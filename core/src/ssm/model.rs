@@ -106,11 +106,7 @@ impl StateSpace {
         let model = StateSpace {
             d: DVector::zeros(p),
             c: DVector::zeros(m),
-            blocks: vec![StateBlock {
-                offset: 0,
-                dim: m,
-                rule: StepRule::WholePeriods,
-            }],
+            blocks: vec![StateBlock { offset: 0, dim: m, rule: StepRule::WholePeriods }],
             z,
             h,
             t,
@@ -137,9 +133,7 @@ impl StateSpace {
     /// Number of diffuse initial states (rank of `p1_inf`, counted as the
     /// number of non-zero diagonal elements, which is what every builder here makes).
     pub fn n_diffuse(&self) -> usize {
-        (0..self.state_dim())
-            .filter(|&i| self.p1_inf[(i, i)] != 0.0)
-            .count()
+        (0..self.state_dim()).filter(|&i| self.p1_inf[(i, i)] != 0.0).count()
     }
 
     /// Panics unless every matrix has the shape the others imply.
@@ -167,9 +161,7 @@ impl StateSpace {
 
     /// True when no block needs the whole-period power rule.
     fn all_closed_form(&self) -> bool {
-        self.blocks
-            .iter()
-            .all(|b| !matches!(b.rule, StepRule::WholePeriods))
+        self.blocks.iter().all(|b| !matches!(b.rule, StepRule::WholePeriods))
     }
 
     /// Writes T and RQR' for a step of `dt` periods into `sys`.
@@ -184,17 +176,36 @@ impl StateSpace {
             return;
         }
         if !self.all_closed_form() {
-            // Whole periods: T^k and sum_{j<k} T^j RQR' T^j' by recursion
-            // T_k = T T_{k-1}, S_k = T S_{k-1} T' + RQR'.
-            let k = dt.round().max(1.0) as usize;
-            sys.t.copy_from(&self.t);
-            sys.rqr.copy_from(&sys.rqr1);
-            for _ in 1..k {
-                sys.tmp.gemm(1.0, &self.t, &sys.t, 0.0);
-                sys.t.copy_from(&sys.tmp);
-                sys.tmp.gemm(1.0, &self.t, &sys.rqr, 0.0);
-                sys.rqr.gemm(1.0, &sys.tmp, &sys.t1_tr, 0.0);
-                sys.rqr += &sys.rqr1;
+            // Whole periods: (T^k, sum_{j<k} T^j RQR' T^j') by binary powering.
+            // Two steps compose as (T_b T_a, T_b S_a T_b' + S_b); powers of one
+            // system commute, so O(log k) products suffice even for a gap of
+            // a day at one-second sampling.
+            let mut k = dt.round().max(1.0) as u64;
+            sys.t.fill_with_identity();
+            sys.rqr.fill(0.0);
+            sys.base_t.copy_from(&self.t);
+            sys.base_s.copy_from(&sys.rqr1);
+            loop {
+                sys.base_tr.tr_copy_from(&sys.base_t);
+                if k & 1 == 1 {
+                    // result <- compose(result, base)
+                    sys.tmp.gemm(1.0, &sys.base_t, &sys.rqr, 0.0);
+                    sys.tmp2.gemm(1.0, &sys.tmp, &sys.base_tr, 0.0);
+                    sys.rqr.copy_from(&sys.tmp2);
+                    sys.rqr += &sys.base_s;
+                    sys.tmp.gemm(1.0, &sys.base_t, &sys.t, 0.0);
+                    sys.t.copy_from(&sys.tmp);
+                }
+                k >>= 1;
+                if k == 0 {
+                    break;
+                }
+                // base <- compose(base, base)
+                sys.tmp.gemm(1.0, &sys.base_t, &sys.base_s, 0.0);
+                sys.tmp2.gemm(1.0, &sys.tmp, &sys.base_tr, 0.0);
+                sys.base_s += &sys.tmp2;
+                sys.tmp.gemm(1.0, &sys.base_t, &sys.base_t, 0.0);
+                sys.base_t.copy_from(&sys.tmp);
             }
         } else {
             sys.t.fill(0.0);
@@ -211,10 +222,7 @@ impl StateSpace {
                     sys.t[(o, o)] = 1.0;
                     sys.rqr[(o, o)] = q * dt;
                 }
-                StepRule::Trend {
-                    q_level: a,
-                    q_slope: b,
-                } => {
+                StepRule::Trend { q_level: a, q_slope: b } => {
                     sys.t[(o, o)] = 1.0;
                     sys.t[(o, o + 1)] = dt;
                     sys.t[(o + 1, o)] = 0.0;
@@ -242,7 +250,6 @@ impl StateSpace {
         let m = self.state_dim();
         let mut sys = StepSystem::new(m);
         sys.rqr1 = self.rqr();
-        sys.t1_tr = self.t.transpose();
         sys.t.copy_from(&self.t);
         sys.rqr.copy_from(&sys.rqr1);
         sys.dt = 1.0;
@@ -260,8 +267,11 @@ pub struct StepSystem {
     /// The step length `t` and `rqr` were computed for.
     pub dt: f64,
     rqr1: DMatrix<f64>,
-    t1_tr: DMatrix<f64>,
+    base_tr: DMatrix<f64>,
     tmp: DMatrix<f64>,
+    tmp2: DMatrix<f64>,
+    base_t: DMatrix<f64>,
+    base_s: DMatrix<f64>,
 }
 
 impl StepSystem {
@@ -271,8 +281,11 @@ impl StepSystem {
             rqr: DMatrix::zeros(m, m),
             dt: f64::NAN,
             rqr1: DMatrix::zeros(m, m),
-            t1_tr: DMatrix::zeros(m, m),
+            base_tr: DMatrix::zeros(m, m),
             tmp: DMatrix::zeros(m, m),
+            tmp2: DMatrix::zeros(m, m),
+            base_t: DMatrix::zeros(m, m),
+            base_s: DMatrix::zeros(m, m),
         }
     }
 
@@ -299,12 +312,7 @@ pub struct Observations<'a> {
 impl<'a> Observations<'a> {
     /// A univariate series on a regular grid.
     pub fn univariate(y: &'a [f64]) -> Self {
-        Observations {
-            y,
-            p: 1,
-            dt: None,
-            h_scale: None,
-        }
+        Observations { y, p: 1, dt: None, h_scale: None }
     }
 
     /// Number of time points n.
@@ -325,17 +333,9 @@ impl<'a> Observations<'a> {
             return Err(SsmError::NonFiniteObservation { index, value });
         }
         if let Some(dt) = self.dt {
-            assert_eq!(
-                dt.len(),
-                self.len(),
-                "dt must have one entry per time point"
-            );
+            assert_eq!(dt.len(), self.len(), "dt must have one entry per time point");
             let last = dt.len().saturating_sub(1);
-            if let Some((index, &value)) = dt[..last]
-                .iter()
-                .enumerate()
-                .find(|(_, v)| !(v.is_finite() && **v > 0.0))
-            {
+            if let Some((index, &value)) = dt[..last].iter().enumerate().find(|(_, v)| !(v.is_finite() && **v > 0.0)) {
                 return Err(SsmError::BadTimeStep { index, value });
             }
         }

@@ -8,11 +8,7 @@ use super::*;
 use crate::rng::Rng;
 
 fn min_eig(m: &DMatrix<f64>) -> f64 {
-    SymmetricEigen::new(m.clone())
-        .eigenvalues
-        .iter()
-        .cloned()
-        .fold(f64::INFINITY, f64::min)
+    SymmetricEigen::new(m.clone()).eigenvalues.iter().cloned().fold(f64::INFINITY, f64::min)
 }
 
 fn is_symmetric(m: &DMatrix<f64>) -> bool {
@@ -47,13 +43,7 @@ fn model_from(spec: &str, raw: &[f64]) -> (ModelSpec, Vec<f64>) {
     (spec, params)
 }
 
-const SPECS: [&str; 5] = [
-    "local-level",
-    "local-trend",
-    "local-level+arma(1,0)",
-    "arma(2,1)",
-    "local-trend+arma(1,1)",
-];
+const SPECS: [&str; 5] = ["local-level", "local-trend", "local-level+arma(1,0)", "arma(2,1)", "local-trend+arma(1,1)"];
 
 proptest! {
     #![proptest_config(ProptestConfig::with_cases(48))]
@@ -162,11 +152,8 @@ proptest! {
 /// Forecasting, §3.2) within five standard errors (Bartlett's formula).
 #[test]
 fn simulated_arma_autocovariances_match_theory() {
-    let cases: [(&[f64], &[f64], f64); 3] = [
-        (&[0.7], &[], 1.0),
-        (&[0.5, -0.3], &[0.4], 2.0),
-        (&[0.6], &[0.3, -0.2], 1.0),
-    ];
+    let cases: [(&[f64], &[f64], f64); 3] =
+        [(&[0.7], &[], 1.0), (&[0.5, -0.3], &[0.4], 2.0), (&[0.6], &[0.3, -0.2], 1.0)];
     for (k, (phi, theta, s2)) in cases.into_iter().enumerate() {
         let n = 200_000;
         let mut rng = Rng::new(100 + k as u64);
@@ -174,19 +161,11 @@ fn simulated_arma_autocovariances_match_theory() {
         let theory = arma::autocovariances(phi, theta, s2, 60).unwrap();
         let mean = x.iter().sum::<f64>() / n as f64;
         // Bartlett: Var(gamma_hat(h)) ~ (1/n) sum_j (gamma(j)^2 + gamma(j+h) gamma(j-h)); bounded by 2 sum gamma^2 / n.
-        let sum_sq: f64 =
-            theory[0] * theory[0] + 2.0 * theory[1..].iter().map(|g| g * g).sum::<f64>();
+        let sum_sq: f64 = theory[0] * theory[0] + 2.0 * theory[1..].iter().map(|g| g * g).sum::<f64>();
         let se = (2.0 * sum_sq / n as f64).sqrt();
         for h in 0..=5 {
-            let g: f64 = (0..n - h)
-                .map(|t| (x[t] - mean) * (x[t + h] - mean))
-                .sum::<f64>()
-                / n as f64;
-            assert!(
-                (g - theory[h]).abs() < 5.0 * se,
-                "case {k} lag {h}: sample {g} vs theory {} (se {se})",
-                theory[h]
-            );
+            let g: f64 = (0..n - h).map(|t| (x[t] - mean) * (x[t + h] - mean)).sum::<f64>() / n as f64;
+            assert!((g - theory[h]).abs() < 5.0 * se, "case {k} lag {h}: sample {g} vs theory {} (se {se})", theory[h]);
         }
     }
 }

@@ -9,10 +9,10 @@ use super::filter::{DiffuseElem, ElemKind, FilterOptions, FilterOutput, Path, DI
 use super::model::{Observations, StateSpace};
 use super::smoother::SmootherOutput;
 
-pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOptions) -> FilterOutput {
+pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOptions, out: &mut FilterOutput) {
     let n = obs.len();
     let store = opts.store;
-    let mut out = FilterOutput::allocate(n, 1, 1, store, Path::Scalar);
+    out.reset(n, 1, 1, store, Path::Scalar);
     let (z, d, h, c) = (model.z[(0, 0)], model.d[0], model.h[0], model.c[0]);
     let mut sys = model.step_system();
     let (mut tr, mut q, mut cur_dt) = (sys.t[(0, 0)], sys.rqr[(0, 0)], 1.0);
@@ -22,10 +22,49 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
     let mut diffuse = pi > 0.0;
     let allow_steady = opts.steady_tol > 0.0;
     let mut steady = false;
-    let (mut st_k, mut st_f, mut st_pf) = (0.0, 0.0, 0.0);
+    let (mut st_k, mut st_f, mut st_pf, mut st_logf) = (0.0, 0.0, 0.0, 0.0);
     let (mut sum_v2_f, mut sum_log_f, mut nobs) = (0.0, 0.0, 0usize);
 
-    for t in 0..n {
+    let mut t = 0;
+    while t < n {
+        if steady {
+            // Steady state: K, F and P are fixed; only the state moves. Runs
+            // while the steps are plain (observed, unit weight, one period).
+            let gain = st_k / st_f;
+            let start = t;
+            let mut sum_v2 = 0.0;
+            while t < n {
+                let y = obs.y[t];
+                if y.is_nan() || obs.weight(t, 0) != 1.0 || obs.step(t) != 1.0 {
+                    break;
+                }
+                let v = y - z * a - d;
+                if store {
+                    out.a_pred[t] = a;
+                    out.p_pred[t] = ps;
+                    out.v[t] = v;
+                    out.f[t] = st_f;
+                    out.k[t] = st_k;
+                    out.kind[t] = ElemKind::Regular;
+                }
+                a += gain * v;
+                if store {
+                    out.a_filt[t] = a;
+                    out.p_filt[t] = st_pf;
+                }
+                a = tr * a + c;
+                sum_v2 += v * v;
+                t += 1;
+            }
+            let count = t - start;
+            sum_v2_f += sum_v2 / st_f;
+            sum_log_f += count as f64 * st_logf;
+            nobs += count;
+            if t == n {
+                break;
+            }
+        }
+        // One full step (the general case, and the step that leaves the steady state).
         if store {
             out.a_pred[t] = a;
             out.p_pred[t] = ps;
@@ -41,7 +80,14 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
         }
         let p_prev = ps;
         let was_steady = steady;
-        if !y.is_nan() {
+        if y.is_nan() {
+            if store {
+                out.v[t] = f64::NAN;
+                out.f[t] = f64::NAN;
+                out.k[t] = 0.0;
+                out.kind[t] = ElemKind::Missing;
+            }
+        } else {
             let v = y - z * a - d;
             let (k, f) = if steady {
                 (st_k, st_f)
@@ -63,12 +109,7 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
                     out.f[t] = f;
                     out.k[t] = k;
                     out.kind[t] = ElemKind::Diffuse;
-                    out.diffuse.push(DiffuseElem {
-                        t,
-                        i: 0,
-                        f_inf: fi,
-                        k_inf: vec![ki],
-                    });
+                    out.diffuse.push(DiffuseElem { t, i: 0, f_inf: fi, k_inf: vec![ki] });
                 }
             } else if f > 1e-13 * (h * w + ps).max(f64::MIN_POSITIVE) {
                 a += k * v / f;
@@ -86,6 +127,8 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
                 }
             } else if store {
                 out.v[t] = v;
+                out.f[t] = f;
+                out.k[t] = 0.0;
                 out.kind[t] = ElemKind::Degenerate;
             }
         }
@@ -108,6 +151,7 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
             plain = false;
         }
         a = tr * a + c;
+        t += 1;
         if steady {
             continue;
         }
@@ -118,16 +162,13 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
         if diffuse {
             pi *= tr * tr;
         }
-        if allow_steady
-            && plain
-            && dt == 1.0
-            && (ps - p_prev).abs() <= opts.steady_tol * ps.max(f64::MIN_POSITIVE)
-        {
+        if allow_steady && plain && dt == 1.0 && (ps - p_prev).abs() <= opts.steady_tol * ps.max(f64::MIN_POSITIVE) {
             steady = true;
-            out.steady_from.get_or_insert(t + 1);
+            out.steady_from.get_or_insert(t);
             st_k = ps * z;
             st_f = z * st_k + h;
             st_pf = ps - st_k * st_k / st_f;
+            st_logf = st_f.ln();
         }
     }
     if diffuse {
@@ -137,18 +178,13 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
     out.sum_log_f = sum_log_f;
     out.nobs = nobs;
     out.finish_loglik();
-    out
 }
 
-pub(crate) fn smooth(
-    model: &StateSpace,
-    obs: &Observations,
-    filt: &FilterOutput,
-) -> SmootherOutput {
+pub(crate) fn smooth(model: &StateSpace, obs: &Observations, filt: &FilterOutput, out: &mut SmootherOutput) {
     let n = filt.n;
     let z = model.z[(0, 0)];
-    let mut state = vec![0.0; n];
-    let mut cov = vec![0.0; n];
+    out.reset(n, 1);
+    let (state, cov) = (&mut out.state, &mut out.cov);
     let mut sys = model.step_system();
     let (mut tr, mut cur_dt) = (sys.t[(0, 0)], 1.0);
     let (mut r0, mut n0, mut r1, mut n1, mut n2) = (0.0, 0.0, 0.0, 0.0, 0.0);
@@ -207,11 +243,5 @@ pub(crate) fn smooth(
                 n2 *= tr * tr;
             }
         }
-    }
-    SmootherOutput {
-        n,
-        m: 1,
-        state,
-        cov,
     }
 }

@@ -50,6 +50,14 @@ pub struct SmootherOutput {
 }
 
 impl SmootherOutput {
+    /// Sizes the buffers for n times of m states, keeping their capacity.
+    pub(crate) fn reset(&mut self, n: usize, m: usize) {
+        self.n = n;
+        self.m = m;
+        self.state.resize(n * m, 0.0);
+        self.cov.resize(n * m * m, 0.0);
+    }
+
     /// Smoothed signal z a_hat_t + d for observation element i of the model.
     pub fn signal(&self, model: &StateSpace, t: usize, i: usize) -> f64 {
         let m = self.m;
@@ -74,43 +82,35 @@ impl SmootherOutput {
 /// Smooths a stored filter run. Panics if `filt` was run without `store`
 /// (a programmer error).
 pub fn smooth(model: &StateSpace, obs: &Observations, filt: &FilterOutput) -> SmootherOutput {
-    assert!(
-        filt.is_stored() || filt.n == 0,
-        "smoothing needs a filter run with store = true"
-    );
+    let mut out = SmootherOutput::default();
+    smooth_into(model, obs, filt, &mut out);
+    out
+}
+
+/// [`smooth`] into an existing output, reusing its buffers.
+pub fn smooth_into(model: &StateSpace, obs: &Observations, filt: &FilterOutput, out: &mut SmootherOutput) {
+    assert!(filt.is_stored() || filt.n == 0, "smoothing needs a filter run with store = true");
     let m = model.state_dim();
     match filt.path {
-        Path::Scalar => scalar::smooth(model, obs, filt),
+        Path::Scalar => scalar::smooth(model, obs, filt, out),
         Path::Fixed => match m {
-            1 => run(Const::<1>, model, obs, filt),
-            2 => run(Const::<2>, model, obs, filt),
-            3 => run(Const::<3>, model, obs, filt),
-            4 => run(Const::<4>, model, obs, filt),
-            _ => run(Dyn(m), model, obs, filt),
+            1 => run(Const::<1>, model, obs, filt, out),
+            2 => run(Const::<2>, model, obs, filt, out),
+            3 => run(Const::<3>, model, obs, filt, out),
+            4 => run(Const::<4>, model, obs, filt, out),
+            _ => run(Dyn(m), model, obs, filt, out),
         },
-        _ => run(Dyn(m), model, obs, filt),
+        _ => run(Dyn(m), model, obs, filt, out),
     }
 }
 
-fn run<D: Dim>(
-    dim: D,
-    model: &StateSpace,
-    obs: &Observations,
-    filt: &FilterOutput,
-) -> SmootherOutput
+fn run<D: Dim>(dim: D, model: &StateSpace, obs: &Observations, filt: &FilterOutput, out: &mut SmootherOutput)
 where
     DefaultAllocator: Allocator<D, D> + Allocator<D> + Allocator<U1, D>,
 {
     let (n, p, m) = (filt.n, filt.p, filt.m);
-    let mut out = SmootherOutput {
-        n,
-        m,
-        state: vec![0.0; n * m],
-        cov: vec![0.0; n * m * m],
-    };
-    let zrows: Vec<OVector<f64, D>> = (0..p)
-        .map(|i| ovec(dim, model.z.row(i).iter().cloned()))
-        .collect();
+    out.reset(n, m);
+    let zrows: Vec<OVector<f64, D>> = (0..p).map(|i| ovec(dim, model.z.row(i).iter().cloned())).collect();
     let mut sys = model.step_system();
     let mut tt = omat(dim, &sys.t);
     let mut ttr = tt.transpose();
@@ -186,11 +186,8 @@ where
         tmp.gemm(1.0, &n0, &pm, 0.0);
         v.gemm(-1.0, &pm, &tmp, 1.0);
         if in_diffuse {
-            let pinf = OMatrix::<f64, D, D>::from_column_slice_generic(
-                dim,
-                dim,
-                &filt.p_inf_pred[t * m * m..(t + 1) * m * m],
-            );
+            let pinf =
+                OMatrix::<f64, D, D>::from_column_slice_generic(dim, dim, &filt.p_inf_pred[t * m * m..(t + 1) * m * m]);
             a.gemv(1.0, &pinf, &r1, 1.0);
             let c = &pinf * &n1 * &pm;
             v -= &c;
@@ -223,5 +220,4 @@ where
             }
         }
     }
-    out
 }

@@ -89,10 +89,7 @@ impl FromStr for ModelSpec {
     type Err = SsmError;
 
     fn from_str(s: &str) -> Result<Self> {
-        let bad = |reason: String| SsmError::BadSpec {
-            spec: s.to_string(),
-            reason,
-        };
+        let bad = |reason: String| SsmError::BadSpec { spec: s.to_string(), reason };
         let mut components = Vec::new();
         for part in s.split('+') {
             let part = part.trim();
@@ -101,31 +98,24 @@ impl FromStr for ModelSpec {
                 "local-level" => Component::LocalLevel,
                 "local-trend" => Component::LocalTrend,
                 "noise" => Component::Noise,
-                "" => {
-                    return Err(bad(
-                        "empty component (two `+` in a row, or a `+` at an end)".into(),
-                    ))
-                }
+                "" => return Err(bad("empty component (two `+` in a row, or a `+` at an end)".into())),
                 _ => {
-                    let inner = part
-                        .strip_prefix("arma(")
-                        .and_then(|r| r.strip_suffix(')'))
-                        .ok_or_else(|| bad(format!("unknown component `{part}`; expected local-level, local-trend, arma(p,q), const or noise")))?;
-                    let (ps, qs) = inner.split_once(',').ok_or_else(|| {
-                        bad(format!("`{part}` needs two orders, as in arma(2,1)"))
+                    let inner = part.strip_prefix("arma(").and_then(|r| r.strip_suffix(')')).ok_or_else(|| {
+                        bad(format!(
+                            "unknown component `{part}`; expected local-level, local-trend, arma(p,q), const or noise"
+                        ))
                     })?;
+                    let (ps, qs) = inner
+                        .split_once(',')
+                        .ok_or_else(|| bad(format!("`{part}` needs two orders, as in arma(2,1)")))?;
                     let parse = |x: &str| {
-                        x.trim().parse::<usize>().map_err(|_| {
-                            bad(format!("`{}` in `{part}` is not a whole number", x.trim()))
-                        })
+                        x.trim()
+                            .parse::<usize>()
+                            .map_err(|_| bad(format!("`{}` in `{part}` is not a whole number", x.trim())))
                     };
                     let (p, q) = (parse(ps)?, parse(qs)?);
                     if p > MAX_ARMA_ORDER || q > MAX_ARMA_ORDER {
-                        return Err(SsmError::OrderTooHigh {
-                            p,
-                            q,
-                            cap: MAX_ARMA_ORDER,
-                        });
+                        return Err(SsmError::OrderTooHigh { p, q, cap: MAX_ARMA_ORDER });
                     }
                     Component::Arma { p, q }
                 }
@@ -134,31 +124,21 @@ impl FromStr for ModelSpec {
         }
         let count = |f: fn(&Component) -> bool| components.iter().filter(|c| f(c)).count();
         if count(|c| matches!(c, Component::LocalLevel | Component::LocalTrend)) > 1 {
-            return Err(bad(
-                "at most one of local-level and local-trend (a trend already has a level)".into(),
-            ));
+            return Err(bad("at most one of local-level and local-trend (a trend already has a level)".into()));
         }
         if count(|c| matches!(c, Component::Arma { .. })) > 1 {
-            return Err(bad(
-                "at most one arma component (two are not identifiable)".into()
-            ));
+            return Err(bad("at most one arma component (two are not identifiable)".into()));
         }
-        if count(|c| matches!(c, Component::Constant)) > 1
-            || count(|c| matches!(c, Component::Noise)) > 1
-        {
+        if count(|c| matches!(c, Component::Constant)) > 1 || count(|c| matches!(c, Component::Noise)) > 1 {
             return Err(bad("const and noise may appear once each".into()));
         }
         if count(|c| matches!(c, Component::Constant)) == 1
             && count(|c| matches!(c, Component::LocalLevel | Component::LocalTrend)) == 1
         {
-            return Err(bad(
-                "const is redundant with a level (the level already has an unknown start)".into(),
-            ));
+            return Err(bad("const is redundant with a level (the level already has an unknown start)".into()));
         }
         if components.iter().all(|c| c.states() == 0) {
-            return Err(bad(
-                "the model has no state; add local-level, local-trend, arma(p,q) or const".into(),
-            ));
+            return Err(bad("the model has no state; add local-level, local-trend, arma(p,q) or const".into()));
         }
         Ok(ModelSpec { components })
     }
@@ -179,12 +159,7 @@ impl ModelSpec {
 
     /// True when the model has observation noise sigma2.obs.
     pub fn has_obs_noise(&self) -> bool {
-        self.components.iter().any(|c| {
-            matches!(
-                c,
-                Component::LocalLevel | Component::LocalTrend | Component::Noise
-            )
-        })
+        self.components.iter().any(|c| matches!(c, Component::LocalLevel | Component::LocalTrend | Component::Noise))
     }
 
     /// State dimension m.
@@ -247,16 +222,10 @@ impl ModelSpec {
         }
         for ((name, kind), &value) in names.iter().zip(params) {
             if !value.is_finite() {
-                return Err(SsmError::NonFiniteParameter {
-                    name: name.clone(),
-                    value,
-                });
+                return Err(SsmError::NonFiniteParameter { name: name.clone(), value });
             }
             if *kind == ParamKind::Variance && value < 0.0 {
-                return Err(SsmError::NegativeVariance {
-                    name: name.clone(),
-                    value,
-                });
+                return Err(SsmError::NegativeVariance { name: name.clone(), value });
             }
         }
         let mut i = usize::from(self.has_obs_noise());
@@ -308,11 +277,7 @@ impl ModelSpec {
                     z[(0, o)] = 1.0;
                     t[(o, o)] = 1.0;
                     p1_inf[(o, o)] = 1.0;
-                    blocks.push(StateBlock {
-                        offset: o,
-                        dim: 1,
-                        rule: StepRule::Constant,
-                    });
+                    blocks.push(StateBlock { offset: o, dim: 1, rule: StepRule::Constant });
                 }
                 Component::LocalLevel => {
                     z[(0, o)] = 1.0;
@@ -320,11 +285,7 @@ impl ModelSpec {
                     r[(o, e)] = 1.0;
                     q[(e, e)] = params[i];
                     p1_inf[(o, o)] = 1.0;
-                    blocks.push(StateBlock {
-                        offset: o,
-                        dim: 1,
-                        rule: StepRule::RandomWalk { q: params[i] },
-                    });
+                    blocks.push(StateBlock { offset: o, dim: 1, rule: StepRule::RandomWalk { q: params[i] } });
                     i += 1;
                     e += 1;
                 }
@@ -342,10 +303,7 @@ impl ModelSpec {
                     blocks.push(StateBlock {
                         offset: o,
                         dim: 2,
-                        rule: StepRule::Trend {
-                            q_level: params[i],
-                            q_slope: params[i + 1],
-                        },
+                        rule: StepRule::Trend { q_level: params[i], q_slope: params[i + 1] },
                     });
                     i += 2;
                     e += 2;
@@ -363,11 +321,7 @@ impl ModelSpec {
                     let w = &rb * rb.transpose() * sigma2;
                     let pst = solve_discrete_lyapunov(&tb, &w)?;
                     p1_star.view_mut((o, o), (k, k)).copy_from(&pst);
-                    blocks.push(StateBlock {
-                        offset: o,
-                        dim: k,
-                        rule: StepRule::WholePeriods,
-                    });
+                    blocks.push(StateBlock { offset: o, dim: k, rule: StepRule::WholePeriods });
                     i += ap + aq + 1;
                     e += 1;
                 }
@@ -375,16 +329,7 @@ impl ModelSpec {
             }
             o += c.states();
         }
-        let mut model = StateSpace::new(
-            z,
-            DVector::from_element(1, h),
-            t,
-            r,
-            q,
-            DVector::zeros(m),
-            p1_star,
-            p1_inf,
-        );
+        let mut model = StateSpace::new(z, DVector::from_element(1, h), t, r, q, DVector::zeros(m), p1_star, p1_inf);
         model.blocks = blocks;
         model.check_shapes();
         Ok(model)
@@ -397,29 +342,14 @@ mod tests {
 
     #[test]
     fn parses_and_prints() {
-        for s in [
-            "local-level",
-            "local-trend",
-            "arma(2,1)",
-            "local-level+arma(2,0)",
-            "const+arma(1,1)",
-            "arma(1,0)+noise",
-        ] {
+        for s in
+            ["local-level", "local-trend", "arma(2,1)", "local-level+arma(2,0)", "const+arma(1,1)", "arma(1,0)+noise"]
+        {
             let spec: ModelSpec = s.parse().unwrap();
             assert_eq!(spec.to_string(), s);
         }
         let spec: ModelSpec = "local-level+arma(2,1)".parse().unwrap();
-        assert_eq!(
-            spec.param_names(),
-            [
-                "sigma2.obs",
-                "sigma2.level",
-                "phi.1",
-                "phi.2",
-                "theta.1",
-                "sigma2.arma"
-            ]
-        );
+        assert_eq!(spec.param_names(), ["sigma2.obs", "sigma2.level", "phi.1", "phi.2", "theta.1", "sigma2.arma"]);
         assert_eq!(spec.state_dim(), 3);
         assert_eq!(spec.n_diffuse(), 1);
     }
@@ -446,25 +376,10 @@ mod tests {
     fn build_checks_parameters() {
         let spec: ModelSpec = "arma(2,1)".parse().unwrap();
         assert!(spec.build(&[0.5, -0.3, 0.4, 2.0]).is_ok());
-        assert!(matches!(
-            spec.build(&[0.5, 0.6, 0.4, 2.0]),
-            Err(SsmError::NonStationary { .. })
-        ));
-        assert!(matches!(
-            spec.build(&[0.5, -0.3, 1.4, 2.0]),
-            Err(SsmError::NonInvertible { .. })
-        ));
-        assert!(matches!(
-            spec.build(&[0.5, -0.3, 0.4, -2.0]),
-            Err(SsmError::NegativeVariance { .. })
-        ));
-        assert!(matches!(
-            spec.build(&[f64::NAN, -0.3, 0.4, 2.0]),
-            Err(SsmError::NonFiniteParameter { .. })
-        ));
-        assert!(matches!(
-            spec.build(&[0.5]),
-            Err(SsmError::ParameterCount { .. })
-        ));
+        assert!(matches!(spec.build(&[0.5, 0.6, 0.4, 2.0]), Err(SsmError::NonStationary { .. })));
+        assert!(matches!(spec.build(&[0.5, -0.3, 1.4, 2.0]), Err(SsmError::NonInvertible { .. })));
+        assert!(matches!(spec.build(&[0.5, -0.3, 0.4, -2.0]), Err(SsmError::NegativeVariance { .. })));
+        assert!(matches!(spec.build(&[f64::NAN, -0.3, 0.4, 2.0]), Err(SsmError::NonFiniteParameter { .. })));
+        assert!(matches!(spec.build(&[0.5]), Err(SsmError::ParameterCount { .. })));
     }
 }

@@ -14,9 +14,7 @@ pub(crate) fn simulate(model: &StateSpace, n: usize, rng: &mut Rng) -> Vec<f64> 
     let p = model.obs_dim();
     let rqr = model.rqr();
     let chol = (&rqr + DMatrix::identity(m, m) * 1e-300).cholesky();
-    let lq = chol
-        .map(|c| c.l())
-        .unwrap_or_else(|| DMatrix::from_diagonal(&rqr.diagonal().map(|x| x.max(0.0).sqrt())));
+    let lq = chol.map(|c| c.l()).unwrap_or_else(|| DMatrix::from_diagonal(&rqr.diagonal().map(|x| x.max(0.0).sqrt())));
     let mut a = model.a1.clone();
     let mut y = Vec::with_capacity(n * p);
     for _ in 0..n {
@@ -50,10 +48,8 @@ fn oracle(model: &StateSpace, y: &[f64]) -> (Vec<f64>, Vec<f64>, f64) {
         }
         cov[t][t] = &model.t * &cov[t - 1][t - 1] * model.t.transpose() + &rqr;
     }
-    let obs_idx: Vec<(usize, usize)> = (0..n)
-        .flat_map(|t| (0..p).map(move |i| (t, i)))
-        .filter(|&(t, i)| !y[t * p + i].is_nan())
-        .collect();
+    let obs_idx: Vec<(usize, usize)> =
+        (0..n).flat_map(|t| (0..p).map(move |i| (t, i))).filter(|&(t, i)| !y[t * p + i].is_nan()).collect();
     let k = obs_idx.len();
     let zrow = |i: usize| model.z.row(i).into_owned();
     let mut syy = DMatrix::zeros(k, k);
@@ -124,21 +120,8 @@ fn smoother_and_loglik_match_the_oracle_on_every_path() {
     for path in [Path::Fixed, Path::General] {
         for steady_tol in [0.0, 1e-11] {
             let obs = Observations::univariate(&y);
-            let f = filter(
-                &model,
-                &obs,
-                &FilterOptions {
-                    store: true,
-                    steady_tol,
-                    path,
-                },
-            )
-            .unwrap();
-            assert!(
-                close(f.loglik, ll, 1e-10),
-                "{path:?}: loglik {} vs oracle {ll}",
-                f.loglik
-            );
+            let f = filter(&model, &obs, &FilterOptions { store: true, steady_tol, path }).unwrap();
+            assert!(close(f.loglik, ll, 1e-10), "{path:?}: loglik {} vs oracle {ll}", f.loglik);
             let s = smooth(&model, &obs, &f);
             assert_all_close("smoothed state", &s.state, &sm, 1e-8);
             assert_all_close("smoothed cov", &s.cov, &sv, 1e-8);
@@ -159,15 +142,7 @@ fn scalar_path_matches_the_oracle_including_irregular_steps() {
     let (sm, sv, ll) = oracle(&model, &y);
     for path in [Path::Scalar, Path::Fixed, Path::General] {
         let obs = Observations::univariate(&y);
-        let f = filter(
-            &model,
-            &obs,
-            &FilterOptions {
-                path,
-                ..Default::default()
-            },
-        )
-        .unwrap();
+        let f = filter(&model, &obs, &FilterOptions { path, ..Default::default() }).unwrap();
         assert_eq!(f.path, path);
         assert!(close(f.loglik, ll, 1e-10), "{path:?}: {} vs {ll}", f.loglik);
         let s = smooth(&model, &obs, &f);
@@ -179,17 +154,9 @@ fn scalar_path_matches_the_oracle_including_irregular_steps() {
     let dense = Observations::univariate(&grid);
     let sparse_y = [1.0, 2.5, 2.0, 3.0, 2.8];
     let dt = [3.0, 1.0, 2.0, 1.0, 1.0];
-    let sparse = Observations {
-        y: &sparse_y,
-        p: 1,
-        dt: Some(&dt),
-        h_scale: None,
-    };
+    let sparse = Observations { y: &sparse_y, p: 1, dt: Some(&dt), h_scale: None };
     for path in [Path::Scalar, Path::General] {
-        let opts = FilterOptions {
-            path,
-            ..Default::default()
-        };
+        let opts = FilterOptions { path, ..Default::default() };
         let fd = filter(&model, &dense, &opts).unwrap();
         let fs = filter(&model, &sparse, &opts).unwrap();
         assert!(close(fd.loglik, fs.loglik, 1e-12));
@@ -227,21 +194,8 @@ fn multivariate_with_partly_missing_rows_matches_the_oracle() {
     y[14 * 2 + 1] = f64::NAN; // both at t = 14
     let (sm, sv, ll) = oracle(&model, &y);
     for path in [Path::Fixed, Path::General] {
-        let obs = Observations {
-            y: &y,
-            p: 2,
-            dt: None,
-            h_scale: None,
-        };
-        let f = filter(
-            &model,
-            &obs,
-            &FilterOptions {
-                path,
-                ..Default::default()
-            },
-        )
-        .unwrap();
+        let obs = Observations { y: &y, p: 2, dt: None, h_scale: None };
+        let f = filter(&model, &obs, &FilterOptions { path, ..Default::default() }).unwrap();
         assert!(close(f.loglik, ll, 1e-10), "{} vs {ll}", f.loglik);
         let s = smooth(&model, &obs, &f);
         assert_all_close("state", &s.state, &sm, 1e-8);
@@ -256,12 +210,7 @@ fn multivariate_with_partly_missing_rows_matches_the_oracle() {
 /// differ by the known kappa terms.
 #[test]
 fn exact_diffuse_agrees_with_large_kappa() {
-    for spec in [
-        "local-level",
-        "local-trend",
-        "local-level+arma(1,1)",
-        "const+arma(2,0)",
-    ] {
+    for spec in ["local-level", "local-trend", "local-level+arma(1,1)", "const+arma(2,0)"] {
         let spec: ModelSpec = spec.parse().unwrap();
         let params: Vec<f64> = spec
             .params()
@@ -276,10 +225,7 @@ fn exact_diffuse_agrees_with_large_kappa() {
             .collect();
         let exact = spec.build(&params).unwrap();
         let mut rng = Rng::new(21);
-        let mut y: Vec<f64> = simulate(&exact, 40, &mut rng)
-            .iter()
-            .map(|v| v + 100.0)
-            .collect();
+        let mut y: Vec<f64> = simulate(&exact, 40, &mut rng).iter().map(|v| v + 100.0).collect();
         y[1] = f64::NAN;
         y[20] = f64::NAN;
         let kappa = 1e7;
@@ -290,38 +236,20 @@ fn exact_diffuse_agrees_with_large_kappa() {
         let m = exact.state_dim();
         for path in [Path::Auto, Path::General] {
             let obs = Observations::univariate(&y);
-            let fe = filter(
-                &exact,
-                &obs,
-                &FilterOptions {
-                    path,
-                    ..Default::default()
-                },
-            )
-            .unwrap();
+            let fe = filter(&exact, &obs, &FilterOptions { path, ..Default::default() }).unwrap();
             let se = smooth(&exact, &obs, &fe);
             for t in 0..40 {
-                let (a, b) = (
-                    se.signal(&exact, t, 0),
-                    (0..m).map(|j| exact.z[(0, j)] * sm[t * m + j]).sum::<f64>(),
-                );
+                let (a, b) = (se.signal(&exact, t, 0), (0..m).map(|j| exact.z[(0, j)] * sm[t * m + j]).sum::<f64>());
                 assert!(close(a, b, 1e-6), "{spec} t={t}: signal {a} vs {b}");
                 let zv = DVector::from_fn(m, |j, _| exact.z[(0, j)]);
-                let vo = (zv.transpose()
-                    * DMatrix::from_column_slice(m, m, &sv[t * m * m..(t + 1) * m * m])
-                    * &zv)[0];
+                let vo = (zv.transpose() * DMatrix::from_column_slice(m, m, &sv[t * m * m..(t + 1) * m * m]) * &zv)[0];
                 let ve = se.signal_var(&exact, t, 0);
                 assert!(close(ve, vo, 1e-4), "{spec} t={t}: signal var {ve} vs {vo}");
             }
             // A diffuse term is -1/2 (log 2 pi + log(kappa F_inf)) as kappa -> inf;
             // the diffuse likelihood keeps -1/2 (log 2 pi + log F_inf) (DK eq. 7.4).
             let extra = 0.5 * kappa.ln() * fe.diffuse.len() as f64;
-            assert!(
-                close(fe.loglik, ll + extra, 1e-5),
-                "{spec}: {} vs {}",
-                fe.loglik,
-                ll + extra
-            );
+            assert!(close(fe.loglik, ll + extra, 1e-5), "{spec}: {} vs {}", fe.loglik, ll + extra);
             assert_eq!(fe.diffuse.len(), spec.n_diffuse());
         }
     }
@@ -337,29 +265,9 @@ fn local_trend_fixed_and_general_paths_agree() {
         y[t] = f64::NAN;
     }
     let obs = Observations::univariate(&y);
-    let ff = filter(
-        &model,
-        &obs,
-        &FilterOptions {
-            path: Path::Fixed,
-            ..Default::default()
-        },
-    )
-    .unwrap();
-    let fg = filter(
-        &model,
-        &obs,
-        &FilterOptions {
-            path: Path::General,
-            steady_tol: 0.0,
-            store: true,
-        },
-    )
-    .unwrap();
-    assert!(
-        ff.steady_from.is_some(),
-        "the steady state should be reached"
-    );
+    let ff = filter(&model, &obs, &FilterOptions { path: Path::Fixed, ..Default::default() }).unwrap();
+    let fg = filter(&model, &obs, &FilterOptions { path: Path::General, steady_tol: 0.0, store: true }).unwrap();
+    assert!(ff.steady_from.is_some(), "the steady state should be reached");
     assert!(close(ff.loglik, fg.loglik, 1e-9));
     let sf = smooth(&model, &obs, &ff);
     let sg = smooth(&model, &obs, &fg);
@@ -389,4 +297,29 @@ fn arma_first_state_reproduces_the_recursion() {
             + theta[1] * e[n - 2];
         assert!((x[n] - want).abs() < 1e-12, "t={n}");
     }
+}
+
+/// The whole-period rule by binary powering equals k single steps, and a
+/// gap of a day at one-second sampling costs no more than a few products.
+#[test]
+fn whole_period_steps_match_repeated_single_steps() {
+    let spec: ModelSpec = "local-level+arma(2,1)".parse().unwrap();
+    let model = spec.build(&[0.5, 0.2, 0.6, -0.2, 0.3, 1.0]).unwrap();
+    let m = model.state_dim();
+    let mut sys = model.step_system();
+    for k in [1usize, 2, 3, 7, 16, 33] {
+        model.system_for_step(k as f64, &mut sys);
+        let (mut t, mut s) = (DMatrix::<f64>::identity(m, m), DMatrix::<f64>::zeros(m, m));
+        let rqr = model.rqr();
+        for _ in 0..k {
+            s = &model.t * s * model.t.transpose() + &rqr;
+            t = &model.t * t;
+        }
+        // The level block follows its closed form (q * dt) and agrees at whole k.
+        assert!((&sys.t - &t).amax() < 1e-12, "T^{k}");
+        assert!((&sys.rqr - &s).amax() < 1e-12 * s.amax().max(1.0), "S_{k}");
+    }
+    model.system_for_step(86_400.0, &mut sys);
+    assert!(sys.rqr.iter().all(|v| v.is_finite()));
+    assert!((sys.rqr[(0, 0)] - 0.2 * 86_400.0).abs() < 1e-6);
 }
