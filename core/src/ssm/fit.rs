@@ -459,3 +459,78 @@ fn std_errors(spec: &ModelSpec, params: &[f64], obs: &Observations, path: Path) 
     let cov = chol.inverse();
     (0..k).map(|i| Some(cov[(i, i)].sqrt()).filter(|v| v.is_finite())).collect()
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::rng::Rng;
+
+    fn spec(s: &str) -> ModelSpec {
+        s.parse().unwrap()
+    }
+
+    #[test]
+    fn bad_data_gives_typed_errors() {
+        let ll = spec("local-level");
+        let fit1 = |y: &[f64]| fit(&ll, &Observations::univariate(y), &FitOptions::default());
+        assert!(matches!(fit1(&[f64::NAN; 20]), Err(SsmError::AllMissing)));
+        assert!(matches!(fit1(&[3.5; 20]), Err(SsmError::Constant { value }) if value == 3.5));
+        assert!(matches!(fit1(&[1.0, 2.0, 1.5]), Err(SsmError::TooShort { n_obs: 3, needed: 4, .. })));
+        assert!(matches!(
+            fit1(&[1.0, f64::INFINITY, 2.0, 3.0, 1.0]),
+            Err(SsmError::NonFiniteObservation { index: 1, .. })
+        ));
+        assert!(matches!(fit1(&[]), Err(SsmError::AllMissing)));
+        // A model with nothing to estimate.
+        let c = spec("const");
+        let y: Vec<f64> = (0..30).map(|t| t as f64).collect();
+        assert!(matches!(
+            fit(&c, &Observations::univariate(&y), &FitOptions::default()),
+            Err(SsmError::NotFittable { .. })
+        ));
+        // Bad starting values are checked like any parameters.
+        let opts = FitOptions { start: Some(vec![1.0, -1.0]), ..Default::default() };
+        assert!(matches!(fit(&ll, &Observations::univariate(&y), &opts), Err(SsmError::NegativeVariance { .. })));
+        let opts = FitOptions { start: Some(vec![0.9, 0.5, 1.0]), ..Default::default() };
+        assert!(matches!(
+            fit(&spec("arma(2,0)"), &Observations::univariate(&y), &opts),
+            Err(SsmError::NonStationary { .. })
+        ));
+    }
+
+    #[test]
+    fn a_cut_short_optimiser_is_reported_not_hidden() {
+        let mut rng = Rng::new(9);
+        let (y, _) = arma::simulate(&[0.6, -0.2], &[0.3], 1.0, 400, &mut rng).unwrap();
+        let opts = FitOptions { max_iter: 1, grad_tol: 1e-12, ..Default::default() };
+        let res = fit(&spec("arma(2,1)"), &Observations::univariate(&y), &opts).unwrap();
+        assert!(!res.converged, "{res:?}");
+        assert!(res.params.iter().all(|p| p.is_finite()));
+        assert!(res.loglik.is_finite());
+        assert!(res.max_gradient > 1e-12);
+    }
+
+    #[test]
+    fn recovers_a_known_model_and_reports_counts() {
+        let mut rng = Rng::new(12);
+        let mut level = 50.0;
+        let mut y: Vec<f64> = (0..3000)
+            .map(|_| {
+                level += 0.2f64.sqrt() * rng.normal();
+                level + 2.0f64.sqrt() * rng.normal()
+            })
+            .collect();
+        for v in &mut y[100..150] {
+            *v = f64::NAN;
+        }
+        let res = fit(&spec("local-level"), &Observations::univariate(&y), &FitOptions::default()).unwrap();
+        assert!(res.converged);
+        assert_eq!((res.n, res.n_missing, res.nobs), (3000, 50, 2949));
+        // True values 2.0 and 0.2; standard errors from the Hessian cover them.
+        for (est, (truth, se)) in res.params.iter().zip([2.0, 0.2].iter().zip(&res.std_errors)) {
+            let se = se.unwrap();
+            assert!((est - truth).abs() < 4.0 * se, "{est} vs {truth} (se {se})");
+        }
+        assert!((res.aic - (-2.0 * res.loglik + 2.0 * 3.0)).abs() < 1e-9);
+    }
+}
