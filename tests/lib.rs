@@ -1,1 +1,237 @@
 //! Shared helpers for the end-to-end and reference tests.
+//!
+//! - [`tagwright_bin`] builds the `tagwright` binary once per test process
+//!   and returns its path; [`tagwright`] runs it and captures a [`Run`].
+//! - [`Sandbox`] gives each test its own temporary directory.
+//! - [`simulate_local_level`], [`write_csv`] and [`write_parquet`] make input files.
+//! - [`corpus_dir`] is the directory of small bad inputs, with its manifest.
+
+// Test support: a failed setup step should stop the test with its message.
+#![allow(clippy::unwrap_used, clippy::expect_used, clippy::panic)]
+
+use std::ffi::OsStr;
+use std::path::{Path, PathBuf};
+use std::process::Command;
+use std::sync::{Arc, OnceLock};
+
+use arrow_array::{ArrayRef, RecordBatch};
+use parquet::arrow::ArrowWriter;
+use tagwright::rng::Rng;
+
+/// 2026-03-01T06:00:00Z in microseconds, the start of the test series.
+pub const T0_US: i64 = 1_772_344_800_000_000;
+
+/// Builds the `tagwright` binary (once per process) and returns its path.
+///
+/// Runs `$CARGO build -p tagwright --bin tagwright` (`cargo` when `CARGO` is
+/// not set) into the target directory and profile of the running test binary,
+/// which lives at `<target>/<profile>/deps/e2e-<hash>`; the binary is then
+/// `<target>/<profile>/tagwright`.
+pub fn tagwright_bin() -> &'static Path {
+    static BIN: OnceLock<PathBuf> = OnceLock::new();
+    BIN.get_or_init(|| {
+        let exe = std::env::current_exe().expect("path of the test binary");
+        let profile_dir =
+            exe.parent().and_then(Path::parent).expect("test binary under <target>/<profile>/deps").to_path_buf();
+        let target_dir = profile_dir.parent().expect("target directory");
+        let profile = profile_dir.file_name().and_then(OsStr::to_str).expect("profile directory name");
+        let cargo = std::env::var_os("CARGO").unwrap_or_else(|| "cargo".into());
+        let mut cmd = Command::new(cargo);
+        cmd.current_dir(env!("CARGO_MANIFEST_DIR"))
+            .args(["build", "--quiet", "-p", "tagwright", "--bin", "tagwright", "--target-dir"])
+            .arg(target_dir);
+        match profile {
+            "debug" => {}
+            "release" => {
+                cmd.arg("--release");
+            }
+            other => {
+                cmd.args(["--profile", other]);
+            }
+        }
+        let status = cmd.status().expect("run cargo build");
+        assert!(status.success(), "cargo build of tagwright failed: {status}");
+        let bin = profile_dir.join(format!("tagwright{}", std::env::consts::EXE_SUFFIX));
+        assert!(bin.is_file(), "{} was not built", bin.display());
+        bin
+    })
+}
+
+/// The outcome of one run of the binary.
+#[derive(Debug)]
+pub struct Run {
+    /// Exit code (-1 if killed by a signal).
+    pub code: i32,
+    pub stdout: String,
+    pub stderr: String,
+}
+
+impl Run {
+    /// Stdout parsed as one JSON value.
+    pub fn json(&self) -> serde_json::Value {
+        serde_json::from_str(&self.stdout)
+            .unwrap_or_else(|e| panic!("stdout is not JSON ({e}):\n{}\nstderr:\n{}", self.stdout, self.stderr))
+    }
+
+    /// Panics with the whole run unless the exit code is `code`.
+    #[track_caller]
+    pub fn assert_code(&self, code: i32) -> &Self {
+        assert_eq!(self.code, code, "exit code\n{self}");
+        self
+    }
+
+    /// Panics unless stderr holds `fragment`.
+    #[track_caller]
+    pub fn assert_stderr_has(&self, fragment: &str) -> &Self {
+        assert!(self.stderr.contains(fragment), "stderr lacks {fragment:?}\n{self}");
+        self
+    }
+}
+
+impl std::fmt::Display for Run {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "exit {}\n--- stdout\n{}--- stderr\n{}", self.code, self.stdout, self.stderr)
+    }
+}
+
+/// Runs `tagwright` with `args`.
+pub fn tagwright<I, S>(args: I) -> Run
+where
+    I: IntoIterator<Item = S>,
+    S: AsRef<OsStr>,
+{
+    let out = Command::new(tagwright_bin()).args(args).output().expect("run tagwright");
+    Run {
+        code: out.status.code().unwrap_or(-1),
+        stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
+        stderr: String::from_utf8_lossy(&out.stderr).into_owned(),
+    }
+}
+
+/// Runs `tagwright fit --input FILE --tag TAG --model MODEL` plus `extra`.
+pub fn fit(input: &Path, tag: &str, model: &str, extra: &[&str]) -> Run {
+    let mut args: Vec<&OsStr> = vec![OsStr::new("fit"), OsStr::new("--input"), input.as_os_str()];
+    args.extend(["--tag", tag, "--model", model].into_iter().map(OsStr::new));
+    args.extend(extra.iter().map(OsStr::new));
+    tagwright(args)
+}
+
+/// A temporary directory of one test, removed when dropped.
+pub struct Sandbox {
+    dir: tempfile::TempDir,
+}
+
+impl Sandbox {
+    pub fn new() -> Self {
+        Sandbox { dir: tempfile::Builder::new().prefix("tagwright-e2e-").tempdir().expect("temp dir") }
+    }
+
+    pub fn path(&self) -> &Path {
+        self.dir.path()
+    }
+
+    /// Writes `bytes` to `name` in the sandbox and returns its path.
+    pub fn write(&self, name: &str, bytes: impl AsRef<[u8]>) -> PathBuf {
+        let p = self.dir.path().join(name);
+        std::fs::write(&p, bytes).unwrap();
+        p
+    }
+}
+
+impl Default for Sandbox {
+    fn default() -> Self {
+        Self::new()
+    }
+}
+
+/// One tag's samples.
+#[derive(Debug, Clone)]
+pub struct Series {
+    pub tag: String,
+    pub ts_us: Vec<i64>,
+    pub values: Vec<f64>,
+}
+
+/// A local level series, y_t = mu_t + e_t, mu_{t+1} = mu_t + eta_t with
+/// Var(e) = `sigma2_obs` and Var(eta) = `sigma2_level` per period, sampled
+/// at `n` times from [`T0_US`]; `step(t, rng)` gives the time from sample t
+/// to t+1 in whole microseconds. Over a step of dt periods the level moves
+/// with variance `sigma2_level * dt`.
+pub fn simulate_local_level(
+    tag: &str,
+    seed: u64,
+    n: usize,
+    sigma2_obs: f64,
+    sigma2_level: f64,
+    period_us: i64,
+    mut step: impl FnMut(usize, &mut Rng) -> i64,
+) -> Series {
+    let mut rng = Rng::new(seed);
+    let (mut ts, mut mu) = (T0_US, 50.0);
+    let mut out = Series { tag: tag.to_string(), ts_us: Vec::with_capacity(n), values: Vec::with_capacity(n) };
+    for t in 0..n {
+        out.ts_us.push(ts);
+        out.values.push(mu + sigma2_obs.sqrt() * rng.normal());
+        let d = step(t, &mut rng);
+        assert!(d > 0, "steps must be positive");
+        mu += (sigma2_level * d as f64 / period_us as f64).sqrt() * rng.normal();
+        ts += d;
+    }
+    out
+}
+
+/// Shuffles rows in place (Fisher-Yates with a seeded generator).
+pub fn shuffle<T>(rows: &mut [T], seed: u64) {
+    let mut rng = Rng::new(seed);
+    for i in (1..rows.len()).rev() {
+        rows.swap(i, rng.below(i + 1));
+    }
+}
+
+/// A time as RFC 3339 text (`2026-03-01T06:00:05Z`).
+pub fn rfc3339(us: i64) -> String {
+    tagwright::io::format_ts_us(us)
+}
+
+/// Long-format rows (tag, time, value) of several series, interleaved by time.
+pub fn long_rows(series: &[&Series]) -> Vec<(String, i64, f64)> {
+    let mut rows: Vec<(String, i64, f64)> =
+        series.iter().flat_map(|s| s.ts_us.iter().zip(&s.values).map(|(&t, &v)| (s.tag.clone(), t, v))).collect();
+    rows.sort_by_key(|r| r.1);
+    rows
+}
+
+/// Writes a CSV file with header `tag,ts,value`, times as RFC 3339 text and
+/// NaN values as empty cells.
+pub fn write_csv(path: &Path, rows: &[(String, i64, f64)]) {
+    let mut text = String::from("tag,ts,value\n");
+    for (tag, ts, v) in rows {
+        let v = if v.is_nan() { String::new() } else { format!("{v}") };
+        text += &format!("{tag},{},{v}\n", rfc3339(*ts));
+    }
+    std::fs::write(path, text).unwrap();
+}
+
+/// Writes a Parquet file of the given named columns (one record batch).
+pub fn write_parquet(path: &Path, columns: Vec<(&str, ArrayRef)>) {
+    let batch = RecordBatch::try_from_iter(columns).unwrap();
+    let file = std::fs::File::create(path).unwrap();
+    let mut w = ArrowWriter::try_new(file, batch.schema(), None).unwrap();
+    w.write(&batch).unwrap();
+    w.close().unwrap();
+}
+
+/// Column of strings.
+pub fn strings<'a>(values: impl IntoIterator<Item = &'a str>) -> ArrayRef {
+    Arc::new(arrow_array::StringArray::from_iter_values(values))
+}
+
+/// Column of f64.
+pub fn floats(values: impl IntoIterator<Item = f64>) -> ArrayRef {
+    Arc::new(arrow_array::Float64Array::from_iter_values(values))
+}
+
+/// `tests/corpus/`: small bad inputs and their manifest `expect.txt`.
+pub fn corpus_dir() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("corpus")
+}

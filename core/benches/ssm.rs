@@ -3,6 +3,7 @@
 //! fixed-size and dynamic paths, and maximum-likelihood fits. The
 //! side-by-side comparison with statsmodels is `vs_statsmodels.sh`.
 
+#![allow(clippy::unwrap_used)] // a bench aborts on a broken fixture; that is the point
 use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion, Throughput};
 use std::hint::black_box;
 use tagwright::rng::Rng;

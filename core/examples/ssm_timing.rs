@@ -19,7 +19,8 @@ use std::time::Instant;
 use std::cell::RefCell;
 
 use tagwright::ssm::{
-    filter_into, fit, smooth_into, FilterOptions, FilterOutput, FitOptions, ModelSpec, Observations, Path, SmootherOutput,
+    filter_into, fit, smooth_into, FilterOptions, FilterOutput, FitOptions, ModelSpec, Observations, Path,
+    SmootherOutput,
 };
 
 fn main() {

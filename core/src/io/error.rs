@@ -26,10 +26,7 @@ pub enum IoError {
     },
     /// The file name does not say which format the file is in.
     #[error("{}: unknown input format {}; expected a name ending in .csv, .parquet or .pq", path.display(), describe_extension(extension.as_deref()))]
-    UnknownFormat {
-        path: PathBuf,
-        extension: Option<String>,
-    },
+    UnknownFormat { path: PathBuf, extension: Option<String> },
     /// The file is not a Parquet file, or its footer, metadata or data pages are damaged.
     #[error("{}: not a Parquet file, or the file is damaged or truncated: {source}", path.display())]
     CorruptParquet {
@@ -51,40 +48,17 @@ pub enum IoError {
     },
     /// A Parquet column whose type the reader cannot use for its role.
     #[error("{}: column `{column}` has type {found}; as the {role} column it must be {expected}", path.display())]
-    ColumnType {
-        path: PathBuf,
-        role: &'static str,
-        column: String,
-        found: String,
-        expected: &'static str,
-    },
+    ColumnType { path: PathBuf, role: &'static str, column: String, found: String, expected: &'static str },
     /// A CSV row that cannot be read (wrong number of fields, invalid
     /// UTF-8, a value that is not a number).
     #[error("{}: row {row}{}: {reason}", path.display(), in_column(column.as_deref()))]
-    BadRow {
-        path: PathBuf,
-        row: u64,
-        column: Option<String>,
-        reason: String,
-    },
+    BadRow { path: PathBuf, row: u64, column: Option<String>, reason: String },
     /// A time that is empty, null, cannot be parsed or is out of range.
     #[error("{}: row {row}, column `{column}`: bad time `{text}`: {reason}", path.display())]
-    BadTime {
-        path: PathBuf,
-        row: u64,
-        column: String,
-        text: String,
-        reason: String,
-    },
+    BadTime { path: PathBuf, row: u64, column: String, text: String, reason: String },
     /// Two samples of the tag carry the same time.
     #[error("{}: tag `{tag}` has two samples at {time} (rows {first_row} and {second_row}); duplicate times are not allowed", path.display())]
-    DuplicateTime {
-        path: PathBuf,
-        tag: String,
-        time: String,
-        first_row: u64,
-        second_row: u64,
-    },
+    DuplicateTime { path: PathBuf, tag: String, time: String, first_row: u64, second_row: u64 },
     /// No row carries the requested tag.
     #[error("{}: tag `{tag}` not found in column `{column}`; {}", path.display(), describe_present(present, *n_present))]
     TagNotFound {
@@ -105,10 +79,7 @@ impl IoError {
     /// True when the error is the caller's (a tag that is not in the file,
     /// a file name without a known format) rather than the file's.
     pub fn is_usage(&self) -> bool {
-        matches!(
-            self,
-            IoError::TagNotFound { .. } | IoError::UnknownFormat { .. }
-        )
+        matches!(self, IoError::TagNotFound { .. } | IoError::UnknownFormat { .. })
     }
 }
 
@@ -132,10 +103,7 @@ fn describe_present(present: &[String], n_present: usize) -> String {
     }
     let list = present.join(", ");
     if n_present > present.len() {
-        format!(
-            "the file has {n_present} tags, the first {} being: {list}",
-            present.len()
-        )
+        format!("the file has {n_present} tags, the first {} being: {list}", present.len())
     } else {
         format!("the tags present are: {list}")
     }

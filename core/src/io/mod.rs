@@ -144,16 +144,11 @@ pub enum Format {
 impl Format {
     /// The format a file name says (`.csv`; `.parquet` or `.pq`), case-insensitive.
     pub fn from_path(path: &Path) -> Result<Format> {
-        let ext = path
-            .extension()
-            .map(|e| e.to_string_lossy().to_ascii_lowercase());
+        let ext = path.extension().map(|e| e.to_string_lossy().to_ascii_lowercase());
         match ext.as_deref() {
             Some("csv") => Ok(Format::Csv),
             Some("parquet" | "pq") => Ok(Format::Parquet),
-            _ => Err(IoError::UnknownFormat {
-                path: path.to_path_buf(),
-                extension: ext,
-            }),
+            _ => Err(IoError::UnknownFormat { path: path.to_path_buf(), extension: ext }),
         }
     }
 }
@@ -171,11 +166,7 @@ pub fn read_tag(path: &Path, tag: &str, columns: &ColumnMap) -> Result<TagSample
 /// ignoring spacings that are not positive. `None` when there is no positive
 /// spacing (fewer than two distinct times).
 pub fn infer_period_us(ts: &[i64]) -> Option<i64> {
-    let mut d: Vec<i64> = ts
-        .windows(2)
-        .map(|w| w[1].saturating_sub(w[0]))
-        .filter(|&d| d > 0)
-        .collect();
+    let mut d: Vec<i64> = ts.windows(2).map(|w| w[1].saturating_sub(w[0])).filter(|&d| d > 0).collect();
     if d.is_empty() {
         return None;
     }

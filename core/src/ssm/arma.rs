@@ -69,7 +69,7 @@ fn step_down(phi: &[f64]) -> std::result::Result<Vec<f64>, (usize, f64)> {
     for k in (1..=p).rev() {
         let r = a[k - 1];
         pacf[k - 1] = r;
-        if !(r.abs() < 1.0) {
+        if r.is_nan() || r.abs() >= 1.0 {
             return Err((k, r));
         }
         let denom = 1.0 - r * r;
@@ -171,13 +171,13 @@ pub fn simulate(
     let sd = sigma2.sqrt();
     for _ in 0..1000 {
         let e = sd * rng.normal();
-        a = &t * a + &sel.column(0) * e;
+        a = &t * a + sel.column(0) * e;
     }
     let mut x = Vec::with_capacity(n);
     let mut shocks = Vec::with_capacity(n);
     for _ in 0..n {
         let e = sd * rng.normal();
-        a = &t * a + &sel.column(0) * e;
+        a = &t * a + sel.column(0) * e;
         x.push(a[0]);
         shocks.push(e);
     }

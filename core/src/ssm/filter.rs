@@ -432,7 +432,7 @@ where
         if !steady && allow_steady {
             p_prev.copy_from(&ps);
         }
-        for i in 0..p {
+        for (i, z) in zrows.iter().enumerate() {
             let j = t * p + i;
             let y = obs.y[j];
             if y.is_nan() {
@@ -449,17 +449,15 @@ where
             if w != 1.0 {
                 plain = false;
             }
-            let z = &zrows[i];
             let h = model.h[i] * w;
             let v = y - z.dot(&a) - model.d[i];
-            let f;
-            if steady {
+            let f = if steady {
                 ks.copy_from(&st_k);
-                f = st_f;
+                st_f
             } else {
                 ks.gemv(1.0, &ps, z, 0.0);
-                f = z.dot(&ks) + h;
-            }
+                z.dot(&ks) + h
+            };
             if diffuse {
                 ki.gemv(1.0, &pi, z, 0.0);
                 let fi = z.dot(&ki);
@@ -483,7 +481,7 @@ where
                     continue;
                 }
             }
-            if !(f > 1e-13 * (h + max_diag(&ps)).max(f64::MIN_POSITIVE)) {
+            if f.is_nan() || f <= 1e-13 * (h + max_diag(&ps)).max(f64::MIN_POSITIVE) {
                 if store {
                     out.v[j] = v;
                     out.f[j] = f;

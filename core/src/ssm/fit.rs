@@ -290,6 +290,28 @@ impl Gradient for ProblemRef<'_, '_> {
     }
 }
 
+/// BFGS from x0, and if that fails or stops with a large gradient, a
+/// Nelder-Mead search followed by BFGS again; returns the better point.
+fn optimise(problem: &Problem, x0: Vec<f64>, opts: &FitOptions) -> (Vec<f64>, u64) {
+    let mut u = x0.clone();
+    let mut iters = 0;
+    if let Some((x, it)) = run_bfgs(problem, x0, opts.max_iter, opts.grad_tol) {
+        u = x;
+        iters += it;
+    }
+    if max_abs(&problem.grad(&u)) > opts.grad_tol {
+        if let Some((x, it)) = run_nelder_mead(problem, &u, opts.max_iter) {
+            iters += it;
+            let (x, it2) = run_bfgs(problem, x.clone(), opts.max_iter, opts.grad_tol).unwrap_or((x, 0));
+            iters += it2;
+            if problem.value(&x) <= problem.value(&u) {
+                u = x;
+            }
+        }
+    }
+    (u, iters)
+}
+
 /// Summary of the observed values used to check data and choose start values.
 struct DataSummary {
     n_obs: usize,
@@ -313,13 +335,13 @@ pub fn fit(spec: &ModelSpec, obs: &Observations, opts: &FitOptions) -> Result<Fi
     if summary.n_obs == 0 {
         return Err(SsmError::AllMissing);
     }
-    if summary.constant {
-        return Err(SsmError::Constant { value: summary.first });
-    }
     let n_diffuse = spec.n_diffuse();
     let needed = k + n_diffuse + 1;
     if summary.n_obs < needed {
         return Err(SsmError::TooShort { n_obs: summary.n_obs, n_params: k, n_diffuse, needed });
+    }
+    if summary.constant {
+        return Err(SsmError::Constant { value: summary.first });
     }
     let tr = Transform::new(spec).ok_or_else(|| SsmError::NotFittable {
         model: spec.to_string(),
@@ -329,50 +351,57 @@ pub fn fit(spec: &ModelSpec, obs: &Observations, opts: &FitOptions) -> Result<Fi
         Problem { spec, tr: &tr, obs, path: opts.path, nobs: summary.n_obs as f64, evals: std::cell::Cell::new(0) };
 
     // Start: given values, or the best of a few variance ratios with AR/MA at zero.
-    let x0 = match &opts.start {
+    // Starting points: the given values, or a small grid. Variance ratios
+    // from 1e-3 to 10; when AR terms share the model with other variances
+    // (AR(1) plus noise is close to ARMA(1,1), so the likelihood can have
+    // two basins) the first AR coefficient also starts at pacf 0, 0.71 and 0.95,
+    // and the best start of each AR value is optimised.
+    let starts: Vec<Vec<f64>> = match &opts.start {
         Some(s) => {
             spec.validate(s)?;
-            tr.unconstrain(s)?
+            vec![tr.unconstrain(s)?]
         }
         None => {
-            let mut best = (f64::INFINITY, vec![0.0; tr.dim()]);
-            let has_ratio = tr.kinds.iter().filter(|k| **k == ParamKind::Variance).count() > 1;
-            let grid: &[f64] = if has_ratio { &[-6.9, -4.6, -2.3, 0.0, 2.3] } else { &[0.0] };
-            for &log_ratio in grid {
-                let u: Vec<f64> = (0..tr.kinds.len())
-                    .filter(|&i| i != tr.scale)
-                    .map(|i| if tr.kinds[i] == ParamKind::Variance { log_ratio } else { 0.0 })
-                    .collect();
-                let f = problem.value(&u);
-                if f < best.0 {
-                    best = (f, u);
+            let n_var = tr.kinds.iter().filter(|k| **k == ParamKind::Variance).count();
+            let ratio_grid: &[f64] = if n_var > 1 { &[-6.9, -4.6, -2.3, 0.0, 2.3] } else { &[0.0] };
+            let first_ar = tr.ar.map(|(s, _)| if s > tr.scale { s - 1 } else { s });
+            let ar_grid: &[f64] = if n_var > 1 && first_ar.is_some() { &[0.0, 1.0, 3.0] } else { &[0.0] };
+            let mut picks = Vec::new();
+            for &ar0 in ar_grid {
+                let mut best = (f64::INFINITY, Vec::new());
+                for &log_ratio in ratio_grid {
+                    let mut u: Vec<f64> = (0..tr.kinds.len())
+                        .filter(|&i| i != tr.scale)
+                        .map(|i| if tr.kinds[i] == ParamKind::Variance { log_ratio } else { 0.0 })
+                        .collect();
+                    if let Some(j) = first_ar {
+                        u[j] = ar0;
+                    }
+                    let f = problem.value(&u);
+                    if f < best.0 || best.1.is_empty() {
+                        best = (f, u);
+                    }
                 }
+                picks.push(best.1);
             }
-            best.1
+            picks
         }
     };
 
-    let (mut u, mut iterations) = if x0.is_empty() {
-        (x0, 0)
-    } else {
-        let mut u = x0.clone();
-        let mut iters = 0;
-        if let Some((x, it)) = run_bfgs(&problem, x0.clone(), opts.max_iter, opts.grad_tol) {
-            u = x;
-            iters += it;
-        }
-        if max_abs(&problem.grad(&u)) > opts.grad_tol {
-            if let Some((x, it)) = run_nelder_mead(&problem, &u, opts.max_iter) {
-                iters += it;
-                let (x, it2) = run_bfgs(&problem, x.clone(), opts.max_iter, opts.grad_tol).unwrap_or((x, 0));
-                if problem.value(&x) <= problem.value(&u) {
-                    u = x;
-                }
-                iters += it2;
+    let mut u = starts[0].clone();
+    let mut iterations = 0;
+    if !u.is_empty() {
+        let mut best_f = f64::INFINITY;
+        for x0 in starts {
+            let (x, it) = optimise(&problem, x0, opts);
+            iterations += it;
+            let f = problem.value(&x);
+            if f < best_f {
+                best_f = f;
+                u = x;
             }
         }
-        (u, iters)
-    };
+    }
     for x in u.iter_mut() {
         if !x.is_finite() {
             *x = 0.0;
@@ -393,7 +422,6 @@ pub fn fit(spec: &ModelSpec, obs: &Observations, opts: &FitOptions) -> Result<Fi
     }
     let loglik = loglik(spec, &params, obs, opts.path)?;
     let std_errors = if opts.std_errors { std_errors(spec, &params, obs, opts.path) } else { vec![None; k] };
-    iterations = iterations.max(u64::from(!u.is_empty()));
     Ok(FitResult {
         model: spec.to_string(),
         param_names: names,
@@ -416,26 +444,32 @@ fn max_abs(x: &[f64]) -> f64 {
 }
 
 /// Standard errors from the inverse of minus the numerical Hessian of the
-/// log-likelihood in the model's parameters.
+/// log-likelihood in the model's parameters. A variance estimated at the
+/// boundary (below 1e-6 of the largest variance) has no standard error: the
+/// usual asymptotics do not hold there. It is held fixed while the
+/// Hessian of the other parameters is taken.
 fn std_errors(spec: &ModelSpec, params: &[f64], obs: &Observations, path: Path) -> Vec<Option<f64>> {
     let k = params.len();
-    let none = vec![None; k];
+    let kinds: Vec<ParamKind> = spec.params().into_iter().map(|(_, kind)| kind).collect();
+    let max_var =
+        params.iter().zip(&kinds).filter(|(_, k)| **k == ParamKind::Variance).fold(0.0f64, |m, (p, _)| m.max(*p));
+    let free: Vec<usize> = (0..k).filter(|&i| kinds[i] != ParamKind::Variance || params[i] > 1e-6 * max_var).collect();
+    let mut out = vec![None; k];
     let f = |x: &[f64]| loglik(spec, x, obs, path).ok().filter(|v| v.is_finite());
-    let Some(f0) = f(params) else { return none };
+    let Some(f0) = f(params) else { return out };
     let h: Vec<f64> = params.iter().map(|p| 1e-4 * p.abs().max(1e-4)).collect();
-    let mut hess = DMatrix::zeros(k, k);
+    let nf = free.len();
+    let mut hess = DMatrix::zeros(nf, nf);
     let mut x = params.to_vec();
-    for i in 0..k {
+    for (a, &i) in free.iter().enumerate() {
         x[i] = params[i] + h[i];
         let fp = f(&x);
         x[i] = params[i] - h[i];
         let fm = f(&x);
         x[i] = params[i];
-        let (Some(fp), Some(fm)) = (fp, fm) else {
-            return none;
-        };
-        hess[(i, i)] = (fp - 2.0 * f0 + fm) / (h[i] * h[i]);
-        for j in 0..i {
+        let (Some(fp), Some(fm)) = (fp, fm) else { return out };
+        hess[(a, a)] = (fp - 2.0 * f0 + fm) / (h[i] * h[i]);
+        for (b, &j) in free.iter().enumerate().take(a) {
             let mut g = |si: f64, sj: f64| {
                 x[i] = params[i] + si * h[i];
                 x[j] = params[j] + sj * h[j];
@@ -444,20 +478,21 @@ fn std_errors(spec: &ModelSpec, params: &[f64], obs: &Observations, path: Path) 
                 x[j] = params[j];
                 v
             };
-            let (Some(a), Some(b), Some(c), Some(d)) = (g(1.0, 1.0), g(1.0, -1.0), g(-1.0, 1.0), g(-1.0, -1.0)) else {
-                return none;
+            let (Some(pp), Some(pm), Some(mp), Some(mm)) = (g(1.0, 1.0), g(1.0, -1.0), g(-1.0, 1.0), g(-1.0, -1.0))
+            else {
+                return out;
             };
-            let v = (a - b - c + d) / (4.0 * h[i] * h[j]);
-            hess[(i, j)] = v;
-            hess[(j, i)] = v;
+            let v = (pp - pm - mp + mm) / (4.0 * h[i] * h[j]);
+            hess[(a, b)] = v;
+            hess[(b, a)] = v;
         }
     }
-    let neg = -hess;
-    let Some(chol) = neg.cholesky() else {
-        return none;
-    };
+    let Some(chol) = (-hess).cholesky() else { return out };
     let cov = chol.inverse();
-    (0..k).map(|i| Some(cov[(i, i)].sqrt()).filter(|v| v.is_finite())).collect()
+    for (a, &i) in free.iter().enumerate() {
+        out[i] = Some(cov[(a, a)].sqrt()).filter(|v| v.is_finite());
+    }
+    out
 }
 
 #[cfg(test)]
@@ -532,5 +567,41 @@ mod tests {
             assert!((est - truth).abs() < 4.0 * se, "{est} vs {truth} (se {se})");
         }
         assert!((res.aic - (-2.0 * res.loglik + 2.0 * 3.0)).abs() < 1e-9);
+    }
+
+    /// Local level plus AR(1) has two basins (AR(1) plus noise is close to
+    /// ARMA(1,1)); from a single start at phi = 0 the fit lands in the worse
+    /// one on these seeds (found by search: 11 of 60 seeds did). The default
+    /// starts must find the better one.
+    #[test]
+    fn mixed_model_finds_the_better_basin() {
+        let s = spec("local-level+arma(1,0)");
+        for seed in [9u64, 15, 19, 34, 52] {
+            let mut rng = Rng::new(seed);
+            let (ar, _) = arma::simulate(&[0.9], &[], 0.5, 300, &mut rng).unwrap();
+            let mut level = 20.0;
+            let y: Vec<f64> = ar
+                .iter()
+                .map(|x| {
+                    level += 0.05 * rng.normal();
+                    level + x + 0.3 * rng.normal()
+                })
+                .collect();
+            let obs = Observations::univariate(&y);
+            let free = fit(&s, &obs, &FitOptions::default()).unwrap();
+            let from_truth =
+                fit(&s, &obs, &FitOptions { start: Some(vec![0.09, 0.0025, 0.9, 0.5]), ..Default::default() }).unwrap();
+            assert!(
+                free.loglik >= from_truth.loglik - 1e-4,
+                "seed {seed}: default starts {} < start at truth {}",
+                free.loglik,
+                from_truth.loglik
+            );
+            for (p, se) in free.params.iter().zip(&free.std_errors) {
+                if *p < 1e-6 * free.params.iter().cloned().fold(0.0, f64::max) {
+                    assert!(se.is_none(), "a boundary variance has no standard error");
+                }
+            }
+        }
     }
 }

@@ -28,6 +28,7 @@ pub(crate) fn simulate(model: &StateSpace, n: usize, rng: &mut Rng) -> Vec<f64> 
     y
 }
 
+#[allow(clippy::needless_range_loop)] // index arithmetic mirrors the block formulas
 /// Oracle: smoothed means/variances and log-likelihood by conditioning the
 /// stacked Gaussian vector directly. Needs a proper (non-diffuse) prior.
 fn oracle(model: &StateSpace, y: &[f64]) -> (Vec<f64>, Vec<f64>, f64) {

@@ -1,0 +1,9 @@
+//! End-to-end tests: the `tagwright` binary run on files, one module per topic.
+//!
+//! - `fit`: `tagwright fit` on simulated series in every input encoding;
+//! - `bad_input`: damaged or wrong inputs made by the tests (Parquet bytes);
+//! - `corpus`: every file of `tests/corpus/` against its manifest entry.
+
+mod bad_input;
+mod corpus;
+mod fit;
