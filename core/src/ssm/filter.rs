@@ -257,6 +257,13 @@ pub fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOptions) -> R
 /// cleans many tags keeps one `FilterOutput` and pays for its pages once.
 pub fn filter_into(model: &StateSpace, obs: &Observations, opts: &FilterOptions, out: &mut FilterOutput) -> Result<()> {
     obs.validate()?;
+    filter_validated(model, obs, opts, out);
+    Ok(())
+}
+
+/// [`filter_into`] for data already checked with [`Observations::validate`]
+/// (the optimiser calls the filter hundreds of times on the same data).
+pub(crate) fn filter_validated(model: &StateSpace, obs: &Observations, opts: &FilterOptions, out: &mut FilterOutput) {
     assert_eq!(obs.p, model.obs_dim(), "observations have p elements, the model expects another p");
     let m = model.state_dim();
     match resolve_path(opts.path, m, obs.p) {
@@ -270,7 +277,6 @@ pub fn filter_into(model: &StateSpace, obs: &Observations, opts: &FilterOptions,
         },
         _ => run(Dyn(m), model, obs, opts, Path::General, out),
     }
-    Ok(())
 }
 
 /// The path that will actually run for a model of m states and p elements.
@@ -396,15 +402,19 @@ where
                     out.a_filt[t * m..(t + 1) * m].copy_from_slice(av);
                     out.p_filt[t * m * m..(t + 1) * m * m].copy_from_slice(st_pfilt.as_slice());
                 }
-                // a <- T a + c (T column-major).
+                // a <- T a + c (T column-major); element loops, since a
+                // copy_from_slice of a few numbers becomes a libc call.
                 let tv = tmpv.as_mut_slice();
-                tv.copy_from_slice(cs);
-                for (j, aj) in av.iter().enumerate() {
-                    for (ti, col) in tv.iter_mut().zip(&ts[j * m..(j + 1) * m]) {
-                        *ti += col * aj;
+                for (i, ti) in tv.iter_mut().enumerate() {
+                    let mut acc = cs[i];
+                    for (j, aj) in av.iter().enumerate() {
+                        acc += ts[j * m + i] * aj;
                     }
+                    *ti = acc;
                 }
-                av.copy_from_slice(tv);
+                for (aj, tj) in av.iter_mut().zip(tv.iter()) {
+                    *aj = *tj;
+                }
                 sum_v2 += v * v;
                 t += 1;
             }

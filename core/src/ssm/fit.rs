@@ -1,6 +1,6 @@
 //! Maximum-likelihood estimation from the prediction-error decomposition.
 //!
-//! The optimiser (argmin's BFGS with a More-Thuente line search, gradients by
+//! The optimiser (argmin's BFGS with a backtracking (Armijo) line search, gradients by
 //! central differences) sees only unconstrained parameters u:
 //!
 //! - a variance is exp(u) (log-variance);
@@ -23,14 +23,15 @@
 //! negative definite (for example a variance estimated at zero).
 
 use argmin::core::{CostFunction, Executor, Gradient, State};
-use argmin::solver::linesearch::MoreThuenteLineSearch;
+use argmin::solver::linesearch::condition::ArmijoCondition;
+use argmin::solver::linesearch::BacktrackingLineSearch;
 use argmin::solver::neldermead::NelderMead;
 use argmin::solver::quasinewton::BFGS;
 use nalgebra::DMatrix;
 use serde::Serialize;
 
 use super::arma;
-use super::filter::{filter, FilterOptions, Path};
+use super::filter::{filter, filter_validated, FilterOptions, FilterOutput, Path};
 use super::model::Observations;
 use super::spec::{ModelSpec, ParamKind};
 use super::{Result, SsmError};
@@ -184,6 +185,8 @@ struct Problem<'a> {
     path: Path,
     nobs: f64,
     evals: std::cell::Cell<u64>,
+    /// Reused filter output (the data were validated once, up front).
+    out: std::cell::RefCell<FilterOutput>,
 }
 
 impl Problem<'_> {
@@ -194,16 +197,13 @@ impl Problem<'_> {
         let Ok(model) = self.spec.build(&params) else {
             return 1e100;
         };
-        match filter(&model, self.obs, &FilterOptions { path: self.path, ..FilterOptions::loglik_only() }) {
-            Ok(out) if out.nobs > 0 => {
-                let ll = out.concentrated_loglik();
-                if ll.is_finite() {
-                    -ll / self.nobs
-                } else {
-                    1e100
-                }
-            }
-            _ => 1e100,
+        let out = &mut *self.out.borrow_mut();
+        filter_validated(&model, self.obs, &FilterOptions { path: self.path, ..FilterOptions::loglik_only() }, out);
+        let ll = out.concentrated_loglik();
+        if out.nobs > 0 && ll.is_finite() {
+            -ll / self.nobs
+        } else {
+            1e100
         }
     }
 
@@ -245,11 +245,8 @@ fn run_bfgs(problem: &Problem, x0: Vec<f64>, max_iter: u64, grad_tol: f64) -> Op
     for (i, row) in h0.iter_mut().enumerate() {
         row[i] = 1.0;
     }
-    let solver = BFGS::new(MoreThuenteLineSearch::new())
-        .with_tolerance_grad(grad_tol * 0.1)
-        .ok()?
-        .with_tolerance_cost(1e-15)
-        .ok()?;
+    let linesearch = BacktrackingLineSearch::new(ArmijoCondition::new(1e-4).ok()?).rho(0.5).ok()?;
+    let solver = BFGS::new(linesearch).with_tolerance_grad(grad_tol * 0.1).ok()?.with_tolerance_cost(1e-15).ok()?;
     let res = Executor::new(ProblemRef(problem), solver)
         .configure(|s| s.param(x0).inv_hessian(h0).max_iters(max_iter))
         .run()
@@ -347,8 +344,15 @@ pub fn fit(spec: &ModelSpec, obs: &Observations, opts: &FitOptions) -> Result<Fi
         model: spec.to_string(),
         reason: "it has no variance parameter".into(),
     })?;
-    let problem =
-        Problem { spec, tr: &tr, obs, path: opts.path, nobs: summary.n_obs as f64, evals: std::cell::Cell::new(0) };
+    let problem = Problem {
+        spec,
+        tr: &tr,
+        obs,
+        path: opts.path,
+        nobs: summary.n_obs as f64,
+        evals: std::cell::Cell::new(0),
+        out: Default::default(),
+    };
 
     // Start: given values, or the best of a few variance ratios with AR/MA at zero.
     // Starting points: the given values, or a small grid. Variance ratios
