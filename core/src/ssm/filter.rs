@@ -368,6 +368,9 @@ where
     let mut st_f = 0.0;
     let mut st_logf = 0.0;
     let mut st_gain = OVector::<f64, D>::zeros_generic(dim, U1);
+    let mut st_b = OVector::<f64, D>::zeros_generic(dim, U1);
+    let mut st_e = OVector::<f64, D>::zeros_generic(dim, U1);
+    let mut st_m = OMatrix::<f64, D, D>::zeros_generic(dim, dim);
     let mut st_pfilt = OMatrix::<f64, D, D>::zeros_generic(dim, dim);
 
     let mut t = 0;
@@ -378,13 +381,28 @@ where
             let start = t;
             let mut sum_v2 = 0.0;
             let d0 = model.d[0];
-            let (zs, gs, ts, cs) = (zrows[0].as_slice(), st_gain.as_slice(), tt.as_slice(), c.as_slice());
+            // a_{t+1} = T (a + g v) + c = M a + b y + e with M = T (I - g z'),
+            // b = T g, e = c - b d: v no longer sits on the dependency chain.
+            let (zs, gs) = (zrows[0].as_slice(), st_gain.as_slice());
+            {
+                let (ts, cs) = (tt.as_slice(), c.as_slice());
+                let (bv, ev, mv) = (st_b.as_mut_slice(), st_e.as_mut_slice(), st_m.as_mut_slice());
+                for i in 0..m {
+                    bv[i] = (0..m).map(|j| ts[j * m + i] * gs[j]).sum::<f64>();
+                    ev[i] = cs[i] - bv[i] * d0;
+                    for j in 0..m {
+                        mv[j * m + i] = ts[j * m + i] - bv[i] * zs[j];
+                    }
+                }
+            }
+            let (bv, ev, mv) = (st_b.as_slice(), st_e.as_slice(), st_m.as_slice());
             while t < n {
                 let y = obs.y[t];
                 if y.is_nan() || obs.weight(t, 0) != 1.0 || obs.step(t) != 1.0 {
                     break;
                 }
-                // Plain slices: for small dynamic m this avoids per-call overhead.
+                // Plain slices and element loops: for small dynamic m this
+                // avoids per-call overhead (a copy of two numbers is a libc call).
                 let av = a.as_mut_slice();
                 let v = y - zs.iter().zip(av.iter()).map(|(z, a)| z * a).sum::<f64>() - d0;
                 if store {
@@ -394,21 +412,16 @@ where
                     out.f[t] = st_f;
                     out.k[t * m..(t + 1) * m].copy_from_slice(st_k.as_slice());
                     out.kind[t] = ElemKind::Regular;
-                }
-                for (aj, gj) in av.iter_mut().zip(gs) {
-                    *aj += gj * v;
-                }
-                if store {
-                    out.a_filt[t * m..(t + 1) * m].copy_from_slice(av);
+                    for ((o, aj), gj) in out.a_filt[t * m..(t + 1) * m].iter_mut().zip(av.iter()).zip(gs) {
+                        *o = aj + gj * v;
+                    }
                     out.p_filt[t * m * m..(t + 1) * m * m].copy_from_slice(st_pfilt.as_slice());
                 }
-                // a <- T a + c (T column-major); element loops, since a
-                // copy_from_slice of a few numbers becomes a libc call.
                 let tv = tmpv.as_mut_slice();
                 for (i, ti) in tv.iter_mut().enumerate() {
-                    let mut acc = cs[i];
+                    let mut acc = ev[i] + bv[i] * y;
                     for (j, aj) in av.iter().enumerate() {
-                        acc += ts[j * m + i] * aj;
+                        acc += mv[j * m + i] * aj;
                     }
                     *ti = acc;
                 }

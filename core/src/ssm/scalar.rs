@@ -31,6 +31,9 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
             // Steady state: K, F and P are fixed; only the state moves. Runs
             // while the steps are plain (observed, unit weight, one period).
             let gain = st_k / st_f;
+            // a_{t+1} = tr (a + gain v) + c = mc a + bc y + ec: v is off the dependency chain.
+            let (mc, bc) = (tr * (1.0 - gain * z), tr * gain);
+            let ec = c - bc * d;
             let start = t;
             let mut sum_v2 = 0.0;
             while t < n {
@@ -46,13 +49,10 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
                     out.f[t] = st_f;
                     out.k[t] = st_k;
                     out.kind[t] = ElemKind::Regular;
-                }
-                a += gain * v;
-                if store {
-                    out.a_filt[t] = a;
+                    out.a_filt[t] = a + gain * v;
                     out.p_filt[t] = st_pf;
                 }
-                a = tr * a + c;
+                a = mc * a + bc * y + ec;
                 sum_v2 += v * v;
                 t += 1;
             }
