@@ -23,7 +23,7 @@ pub const T0_US: i64 = 1_772_344_800_000_000;
 
 /// Builds the `tagwright` binary (once per process) and returns its path.
 ///
-/// Runs `$CARGO build -p tagwright --bin tagwright` (`cargo` when `CARGO` is
+/// Runs `$CARGO build -p tagwright-cli --bin tagwright` (`cargo` when `CARGO` is
 /// not set) into the target directory and profile of the running test binary,
 /// which lives at `<target>/<profile>/deps/e2e-<hash>`; the binary is then
 /// `<target>/<profile>/tagwright`.
@@ -38,7 +38,7 @@ pub fn tagwright_bin() -> &'static Path {
         let cargo = std::env::var_os("CARGO").unwrap_or_else(|| "cargo".into());
         let mut cmd = Command::new(cargo);
         cmd.current_dir(env!("CARGO_MANIFEST_DIR"))
-            .args(["build", "--quiet", "-p", "tagwright", "--bin", "tagwright", "--target-dir"])
+            .args(["build", "--quiet", "-p", "tagwright-cli", "--bin", "tagwright", "--target-dir"])
             .arg(target_dir);
         match profile {
             "debug" => {}
