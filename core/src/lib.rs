@@ -2,6 +2,9 @@
 //!
 //! - [`ssm`]: the state-space mathematics (no I/O).
 //! - [`io`]: readers (one tag's samples from a long-format CSV or Parquet file).
+//! - [`series`]: one tag's samples and its output table.
+//! - [`pipeline`]: pipeline configuration.
+//! - [`plugin`]: the step trait, the registry and the built-in model-free steps.
 //! - [`rng`]: a seeded random number generator for simulations and the demo.
 //!
 //! tagwright's outputs are estimates for reporting and analysis. They do not
@@ -9,5 +12,8 @@
 //! maintenance or site procedures, and must not be used for control or protection.
 
 pub mod io;
+pub mod pipeline;
+pub mod plugin;
 pub mod rng;
+pub mod series;
 pub mod ssm;

@@ -1,0 +1,195 @@
+//! The validated pipeline: what the engine runs. Made from the YAML by
+//! [`super::config`]; every field here has passed validation.
+
+use std::path::PathBuf;
+
+use crate::plugin::TagSettings;
+use crate::series::Sampling;
+use crate::ssm::ModelSpec;
+
+/// A validated pipeline.
+#[derive(Debug, Clone)]
+pub struct PipelineSpec {
+    /// The pipeline file.
+    pub path: PathBuf,
+    /// SHA-256 of the file's bytes, lower-case hex.
+    pub sha256: String,
+    pub site: SiteSpec,
+    pub input: InputSpec,
+    pub shifts: Vec<ShiftSpec>,
+    pub output: OutputSpec,
+    /// Directories external plugins may be loaded from (relative paths are
+    /// relative to the pipeline file).
+    pub plugin_dirs: Vec<PathBuf>,
+    /// Settings applied to every tag before the rules.
+    pub defaults: PartialSettings,
+    pub rules: Vec<RuleSpec>,
+}
+
+/// Site facts.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SiteSpec {
+    /// Time zone in which naive input times and shift starts are read.
+    pub timezone: chrono_tz::Tz,
+}
+
+/// Layout of the input files.
+#[derive(Debug, Clone, PartialEq)]
+pub struct InputSpec {
+    pub format: InputFormat,
+    /// Column names: for `long`, tag, time, value and optionally quality; for
+    /// `wide`, only time is used and every other numeric column is a tag.
+    pub columns: ColumnNames,
+    /// Unit of integer epoch time columns.
+    pub epoch_unit: EpochUnit,
+    /// How the quality column is coded.
+    pub quality: QualityCoding,
+    /// What to do with two samples of one tag at the same time.
+    pub duplicates: DuplicateRule,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum InputFormat {
+    Long,
+    Wide,
+}
+
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct ColumnNames {
+    pub tag: String,
+    pub time: String,
+    pub value: String,
+    pub quality: Option<String>,
+}
+
+impl Default for ColumnNames {
+    fn default() -> Self {
+        ColumnNames { tag: "tag".into(), time: "ts".into(), value: "value".into(), quality: None }
+    }
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum EpochUnit {
+    #[default]
+    Seconds,
+    Milliseconds,
+    Microseconds,
+    Nanoseconds,
+}
+
+/// Quality codings (see `docs/pipeline.md`).
+#[derive(Debug, Clone, PartialEq, Eq, Default)]
+pub enum QualityCoding {
+    /// Integer column: values 0-255 as the classic OPC quality byte; larger
+    /// values as OPC UA status codes. Text column: `Text` with the default words.
+    #[default]
+    Auto,
+    /// Classic OPC quality byte: bits 7-6 = 11 good, 01 uncertain, 00 bad.
+    OpcByte,
+    /// OPC UA StatusCode: top two bits 00 good, 01 uncertain, 10/11 bad.
+    OpcUa,
+    /// Words, compared case-insensitively.
+    Text { good: Vec<String>, uncertain: Vec<String>, bad: Vec<String> },
+}
+
+/// Rule for duplicate timestamps of one tag.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum DuplicateRule {
+    /// Keep the sample of best quality, and among equals the last in file
+    /// order; count the dropped ones (default).
+    #[default]
+    KeepBest,
+    /// Stop with an error naming the tag, the time and the rows.
+    Error,
+}
+
+/// A shift of the site's calendar.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ShiftSpec {
+    pub name: String,
+    /// Local start time.
+    pub start: chrono::NaiveTime,
+    /// Length in hours (> 0, <= 24).
+    pub hours: f64,
+}
+
+/// Output settings.
+#[derive(Debug, Clone, PartialEq, Eq, Default)]
+pub struct OutputSpec {
+    pub compression: Compression,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum Compression {
+    #[default]
+    Zstd,
+    Snappy,
+}
+
+/// Settings a rule (or the defaults) may set; unset fields leave earlier values.
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct PartialSettings {
+    pub units: Option<String>,
+    pub range: Option<(f64, f64)>,
+    pub model: Option<ModelSpec>,
+    pub period_us: Option<i64>,
+    pub sampling: Option<Sampling>,
+    pub uncertain_factor: Option<f64>,
+    /// Coupling of the tags this rule selects (`group:` key).
+    pub group: Option<GroupSpec>,
+}
+
+/// Tags coupled by one rule (e.g. a redundant transmitter set).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct GroupSpec {
+    /// Identifier used in provenance: `rule<N>` unless the rule names it.
+    pub id: String,
+    pub kind: GroupKind,
+    /// A member trusted as reference (for a pair).
+    pub trusted: Option<String>,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum GroupKind {
+    /// Transmitters measuring the same quantity.
+    Redundant,
+}
+
+/// One rule of the pipeline.
+#[derive(Debug, Clone)]
+pub struct RuleSpec {
+    /// Line of the rule in the pipeline file (1-based).
+    pub line: usize,
+    pub tags: TagSelector,
+    pub settings: PartialSettings,
+    /// The chain of steps; `None` leaves the chain of an earlier rule in force.
+    pub steps: Option<Vec<StepSpec>>,
+}
+
+/// A step as written in a rule.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StepSpec {
+    pub name: String,
+    /// Parameters (`null` when none were written).
+    pub params: serde_json::Value,
+    /// Line in the pipeline file (1-based).
+    pub line: usize,
+}
+
+/// Tag names and glob patterns (`*` any run of characters, `?` one
+/// character, `[...]` a character class); a tag is selected if any matches.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct TagSelector {
+    pub patterns: Vec<String>,
+}
+
+/// The resolved configuration of one tag.
+#[derive(Debug, Clone)]
+pub struct ResolvedTag {
+    pub settings: TagSettings,
+    pub steps: Vec<StepSpec>,
+    /// Indices of the rules that matched, in order.
+    pub rules: Vec<usize>,
+    /// The coupling group, if any.
+    pub group: Option<GroupSpec>,
+}
