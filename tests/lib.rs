@@ -5,6 +5,8 @@
 //! - [`Sandbox`] gives each test its own temporary directory.
 //! - [`simulate_local_level`], [`write_csv`] and [`write_parquet`] make input files.
 //! - [`corpus_dir`] is the directory of small bad inputs, with its manifest.
+//! - [`repo_root`] is the repository; [`python`] is the Python of its `.venv`
+//!   with the pinned packages of `tests/python-requirements.txt`.
 
 // Test support: a failed setup step should stop the test with its message.
 #![allow(clippy::unwrap_used, clippy::expect_used, clippy::panic)]
@@ -234,4 +236,94 @@ pub fn floats(values: impl IntoIterator<Item = f64>) -> ArrayRef {
 /// `tests/corpus/`: small bad inputs and their manifest `expect.txt`.
 pub fn corpus_dir() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("corpus")
+}
+
+/// The repository root (the parent of this package's directory).
+pub fn repo_root() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).parent().expect("tests/ has a parent").to_path_buf()
+}
+
+/// The Python interpreter of the repository's virtual environment
+/// `<repo>/.venv`, with the exact versions of `tests/python-requirements.txt`
+/// installed (once per test process).
+///
+/// Creates the environment with `python3 -m venv` if it is missing, and runs
+/// `pip install -r tests/python-requirements.txt` if any pinned package is
+/// missing or at another version, or a module does not import. Panics (the
+/// test fails, it is not skipped) if the environment cannot be made.
+pub fn python() -> PathBuf {
+    static PY: OnceLock<PathBuf> = OnceLock::new();
+    PY.get_or_init(|| {
+        let root = repo_root();
+        let venv = root.join(".venv");
+        let py = if cfg!(windows) { venv.join("Scripts").join("python.exe") } else { venv.join("bin").join("python") };
+        let requirements = root.join("tests").join("python-requirements.txt");
+        if !py.is_file() {
+            let status = Command::new("python3")
+                .arg("-m")
+                .arg("venv")
+                .arg(&venv)
+                .status()
+                .unwrap_or_else(|e| panic!("cannot run python3 to create {}: {e}", venv.display()));
+            assert!(status.success(), "python3 -m venv {} failed: {status}", venv.display());
+        }
+        if let Err(why) = python_ready(&py, &requirements) {
+            let out = Command::new(&py)
+                .args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check", "-r"])
+                .arg(&requirements)
+                .output()
+                .unwrap_or_else(|e| panic!("cannot run {} -m pip: {e}", py.display()));
+            assert!(
+                out.status.success(),
+                "pip install -r {} failed ({why}):\n{}{}",
+                requirements.display(),
+                String::from_utf8_lossy(&out.stdout),
+                String::from_utf8_lossy(&out.stderr)
+            );
+            if let Err(why) = python_ready(&py, &requirements) {
+                panic!("{} still lacks the pinned packages after pip install: {why}", py.display());
+            }
+        }
+        py
+    })
+    .clone()
+}
+
+/// Checks that every `name==version` line of `requirements` is installed at
+/// that version and that the modules the tests use import.
+fn python_ready(py: &Path, requirements: &Path) -> Result<(), String> {
+    const CHECK: &str = r##"
+import sys, importlib, importlib.metadata as md
+bad = []
+for line in open(sys.argv[1], encoding="utf-8"):
+    line = line.split("#", 1)[0].strip()
+    if not line:
+        continue
+    name, _, want = line.partition("==")
+    try:
+        have = md.version(name.strip())
+    except md.PackageNotFoundError:
+        have = None
+    if have != want.strip():
+        bad.append(f"{name.strip()} {have or 'missing'} (want {want.strip()})")
+for module in ("jsonschema", "yaml", "pyarrow", "polars"):
+    try:
+        importlib.import_module(module)
+    except Exception as e:
+        bad.append(f"import {module}: {e}")
+if bad:
+    print("; ".join(bad))
+    sys.exit(1)
+"##;
+    let out = Command::new(py)
+        .arg("-c")
+        .arg(CHECK)
+        .arg(requirements)
+        .output()
+        .map_err(|e| format!("cannot run {}: {e}", py.display()))?;
+    if out.status.success() {
+        Ok(())
+    } else {
+        Err(format!("{}{}", String::from_utf8_lossy(&out.stdout).trim(), String::from_utf8_lossy(&out.stderr).trim()))
+    }
 }

@@ -18,6 +18,8 @@ use anyhow::anyhow;
 use clap::{Args, Parser, Subcommand};
 use serde_json::{json, Map, Value};
 
+mod pipeline_cmds;
+
 use tagwright::io::{infer_period_us, read_tag, ColumnMap, IoError, TagSamples};
 use tagwright::ssm::{fit, FitOptions, FitResult, ModelSpec, Observations, SsmError};
 
@@ -31,6 +33,12 @@ struct Cli {
 
 #[derive(Debug, Subcommand)]
 enum Command {
+    /// Clean historian exports with a pipeline: writes cleaned.parquet and provenance.jsonl.
+    Run(pipeline_cmds::RunArgs),
+    /// Validate a pipeline; with --input, show which tags each rule selects.
+    Check(pipeline_cmds::CheckArgs),
+    /// Write the built-in demo scenario's data, run its pipeline, print the summary.
+    Demo(pipeline_cmds::DemoArgs),
     /// Fit one tag's state-space model by maximum likelihood.
     Fit(FitArgs),
 }
@@ -74,11 +82,17 @@ enum Failure {
     Clap(clap::Error),
     /// Any other failure; printed as `error: {message}`.
     Other { exit: Exit, error: anyhow::Error },
+    /// The command already reported what happened (a run summary); only the exit code remains.
+    Quiet(Exit),
 }
 
 impl Failure {
     fn new(exit: Exit, error: anyhow::Error) -> Self {
         Failure::Other { exit, error }
+    }
+
+    fn quiet(exit: Exit) -> Self {
+        Failure::Quiet(exit)
     }
 }
 
@@ -98,6 +112,7 @@ fn main() -> ExitCode {
             let _ = e.print();
             ExitCode::from(code)
         }
+        Err(Failure::Quiet(exit)) => ExitCode::from(exit as u8),
         Err(Failure::Other { exit, error }) => {
             // Our error messages carry their causes; print only the outermost.
             eprintln!("error: {error}");
@@ -109,6 +124,9 @@ fn main() -> ExitCode {
 fn run() -> Result<(), Failure> {
     let cli = Cli::try_parse().map_err(Failure::Clap)?;
     match cli.command {
+        Command::Run(args) => pipeline_cmds::run(&args),
+        Command::Check(args) => pipeline_cmds::check(&args),
+        Command::Demo(args) => pipeline_cmds::demo(&args),
         Command::Fit(args) => fit_tag(&args),
     }
 }

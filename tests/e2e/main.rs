@@ -2,8 +2,11 @@
 //!
 //! - `fit`: `tagwright fit` on simulated series in every input encoding;
 //! - `bad_input`: damaged or wrong inputs made by the tests (Parquet bytes);
-//! - `corpus`: every file of `tests/corpus/` against its manifest entry.
+//! - `corpus`: every file of `tests/corpus/` against its manifest entry;
+//! - `run`: `tagwright run` and `check`: output contract, provenance, determinism, exit codes.
 
 mod bad_input;
 mod corpus;
 mod fit;
+mod pipeline_schema;
+mod run;

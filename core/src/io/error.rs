@@ -5,10 +5,10 @@ use std::path::PathBuf;
 /// Boxed source error of the Parquet and Arrow libraries.
 pub type BoxError = Box<dyn std::error::Error + Send + Sync + 'static>;
 
-/// What can go wrong when reading a tag's samples from a file.
+/// What can go wrong when reading input files or writing outputs.
 ///
-/// Every variant names the file, and where it makes sense the row and the
-/// column. Rows are counted from 1: in a CSV file the header is row 1 (so
+/// Every variant names the file, and where it makes sense the row, the
+/// column or the tag. Rows are counted from 1: in a CSV file the header is row 1 (so
 /// the first sample is row 2, as a spreadsheet shows it); in a Parquet file
 /// row 1 is the first row of data.
 #[derive(Debug, thiserror::Error)]
@@ -49,8 +49,8 @@ pub enum IoError {
     /// A Parquet column whose type the reader cannot use for its role.
     #[error("{}: column `{column}` has type {found}; as the {role} column it must be {expected}", path.display())]
     ColumnType { path: PathBuf, role: &'static str, column: String, found: String, expected: &'static str },
-    /// A CSV row that cannot be read (wrong number of fields, invalid
-    /// UTF-8, a value that is not a number).
+    /// A row that cannot be read (wrong number of fields, invalid UTF-8, a
+    /// value that is not a number, an empty tag, an unknown quality word).
     #[error("{}: row {row}{}: {reason}", path.display(), in_column(column.as_deref()))]
     BadRow { path: PathBuf, row: u64, column: Option<String>, reason: String },
     /// A time that is empty, null, cannot be parsed or is out of range.
@@ -59,6 +59,38 @@ pub enum IoError {
     /// Two samples of the tag carry the same time.
     #[error("{}: tag `{tag}` has two samples at {time} (rows {first_row} and {second_row}); duplicate times are not allowed", path.display())]
     DuplicateTime { path: PathBuf, tag: String, time: String, first_row: u64, second_row: u64 },
+    /// Two samples of the tag carry the same time, in two different files
+    /// (the `error` duplicate rule).
+    #[error("tag `{tag}` has two samples at {time} ({} row {first_row} and {} row {second_row}); duplicate times are not allowed", first_path.display(), second_path.display())]
+    DuplicateTimeAcross {
+        tag: String,
+        time: String,
+        first_path: PathBuf,
+        first_row: u64,
+        second_path: PathBuf,
+        second_row: u64,
+    },
+    /// A tag asked of an [`super::InputSet`] that none of its files holds.
+    #[error("tag `{tag}` is not in the input ({n_files} file(s) read)")]
+    TagNotInInput { tag: String, n_files: usize },
+    /// The same file was given twice, or no file at all.
+    #[error("{}: {reason}", path.display())]
+    BadInputList { path: PathBuf, reason: String },
+    /// A column of a wide file that cannot be a tag (no name, or a name used twice).
+    #[error("{}: column {index} (`{column}`): {reason}", path.display())]
+    BadColumn { path: PathBuf, index: usize, column: String, reason: String },
+    /// An output file or directory cannot be created, written, synced or moved.
+    #[error("{}: cannot write: {source}", path.display())]
+    Write {
+        path: PathBuf,
+        #[source]
+        source: BoxError,
+    },
+    /// A table given to [`super::CleanedWriter::write_tag`] breaks the
+    /// writer's contract (tags in sorted order, rows in time order, equal
+    /// column lengths).
+    #[error("{}: tag `{tag}`: {reason}", path.display())]
+    BadTable { path: PathBuf, tag: String, reason: String },
     /// No row carries the requested tag.
     #[error("{}: tag `{tag}` not found in column `{column}`; {}", path.display(), describe_present(present, *n_present))]
     TagNotFound {

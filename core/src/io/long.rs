@@ -13,17 +13,16 @@ use std::path::Path;
 use std::sync::Once;
 
 use arrow_array::cast::AsArray;
-use arrow_array::types::{
-    Float32Type, Float64Type, Int32Type, Int64Type, TimestampMicrosecondType, TimestampMillisecondType,
-    TimestampNanosecondType, TimestampSecondType,
-};
-use arrow_array::{Array, PrimitiveArray, RecordBatch, StringViewArray};
-use arrow_schema::{DataType, TimeUnit};
+use arrow_array::{Array, RecordBatch};
+use arrow_schema::DataType;
 use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
 use parquet::arrow::ProjectionMask;
 
+use super::cols::{is_numeric, is_string, StrCol, TimeCol, ValueCol, TAG_TYPES, VALUE_TYPES};
 use super::error::MAX_TAGS_LISTED;
+use super::time::TimeVal;
 use super::{format_ts_us, ColumnMap, IoError, ReadStats, Result, TagSamples};
+use crate::pipeline::EpochUnit;
 
 const TAG: &str = "tag";
 const TIME: &str = "time";
@@ -129,7 +128,7 @@ impl<'a> Collector<'a> {
 
 /// Opens a file, telling a missing file from one that cannot be read, and
 /// rejects an empty one.
-fn open(path: &Path) -> Result<File> {
+pub(super) fn open_file(path: &Path) -> Result<File> {
     let file = File::open(path).map_err(|source| {
         if source.kind() == std::io::ErrorKind::NotFound {
             IoError::NotFound { path: path.to_path_buf() }
@@ -154,7 +153,7 @@ fn open(path: &Path) -> Result<File> {
 
 /// Reads one tag from a CSV file with a header row.
 pub(super) fn read_csv(path: &Path, tag: &str, columns: &ColumnMap) -> Result<TagSamples> {
-    let file = open(path)?;
+    let file = open_file(path)?;
     let mut rdr = csv::ReaderBuilder::new().trim(csv::Trim::All).from_reader(BufReader::new(file));
     let headers = rdr.headers().map_err(|e| csv_error(path, e, None))?.clone();
     let find = |role: &'static str, name: &str| {
@@ -207,7 +206,7 @@ pub(super) fn read_csv(path: &Path, tag: &str, columns: &ColumnMap) -> Result<Ta
 }
 
 /// A csv crate error with the file, row and (where known) column.
-fn csv_error(path: &Path, err: csv::Error, headers: Option<&csv::StringRecord>) -> IoError {
+pub(super) fn csv_error(path: &Path, err: csv::Error, headers: Option<&csv::StringRecord>) -> IoError {
     let row_of = |pos: Option<&csv::Position>| pos.map_or(0, |p| p.record() + 1);
     let row = row_of(err.position());
     match err.into_kind() {
@@ -235,48 +234,29 @@ fn csv_error(path: &Path, err: csv::Error, headers: Option<&csv::StringRecord>) 
 /// A CSV value: empty is missing (`None`); `NaN`, `nan`, `inf` and the like
 /// parse to non-finite numbers, which the collector counts. `None` from the
 /// outer option: not a number.
-fn parse_value_text(s: &str) -> Option<Option<f64>> {
+pub(super) fn parse_value_text(s: &str) -> Option<Option<f64>> {
     if s.is_empty() {
         return Some(None);
     }
     s.parse::<f64>().ok().map(Some)
 }
 
-const TIME_FORMS: &str = "expected RFC 3339 such as 2026-03-01T06:00:05Z or 2026-03-01T07:00:05+01:00, a date and time without offset (read as UTC) such as 2026-03-01 06:00:05, or whole epoch seconds";
-
-/// A CSV time to microseconds UTC (see the module documentation).
+/// A CSV time to microseconds UTC (see the module documentation): as
+/// [`super::time::parse_time_text`] with integers as epoch seconds, and a
+/// naive time read as UTC.
 pub(super) fn parse_time_text(s: &str) -> std::result::Result<i64, String> {
-    if s.is_empty() {
-        return Err("the time is empty".to_string());
+    match super::time::parse_time_text(s, EpochUnit::Seconds) {
+        Ok(TimeVal::Instant(t) | TimeVal::Local(t)) => Ok(t),
+        Err(e) if e == super::time::TIME_FORMS => Err(TIME_FORMS.to_string()),
+        Err(e) => Err(e),
     }
-    let digits = s.strip_prefix(['-', '+']).unwrap_or(s);
-    if !digits.is_empty() && digits.bytes().all(|b| b.is_ascii_digit()) {
-        return s
-            .parse::<i64>()
-            .ok()
-            .and_then(|secs| secs.checked_mul(1_000_000))
-            .ok_or_else(|| "epoch seconds out of range".to_string());
-    }
-    if let Ok(t) = chrono::DateTime::parse_from_rfc3339(s) {
-        return Ok(t.timestamp_micros());
-    }
-    for fmt in ["%Y-%m-%dT%H:%M:%S%.f", "%Y-%m-%d %H:%M:%S%.f"] {
-        if let Ok(t) = chrono::NaiveDateTime::parse_from_str(s, fmt) {
-            return Ok(t.and_utc().timestamp_micros());
-        }
-    }
-    Err(TIME_FORMS.to_string())
 }
+
+const TIME_FORMS: &str = "expected RFC 3339 such as 2026-03-01T06:00:05Z or 2026-03-01T07:00:05+01:00, a date and time without offset (read as UTC) such as 2026-03-01 06:00:05, or whole epoch seconds";
 
 // ---------------------------------------------------------------- Parquet
 
-const TAG_TYPES: &str = "a string (Utf8, LargeUtf8, Utf8View, or a dictionary of strings)";
 const TIME_TYPES: &str = "a timestamp (any unit, with or without time zone) or an Int64/Int32 of epoch seconds";
-const VALUE_TYPES: &str = "numeric (Float64, Float32, Int64 or Int32)";
-
-fn is_string(t: &DataType) -> bool {
-    matches!(t, DataType::Utf8 | DataType::LargeUtf8 | DataType::Utf8View)
-}
 
 /// Reads one tag from a Parquet file, decoding only the three columns needed.
 ///
@@ -302,7 +282,7 @@ thread_local! {
 /// process panic hook stays silent on this thread: a wrapper hook (installed
 /// once, delegating to the hook that was there before) skips panics raised
 /// inside. Other threads and later panics are reported as usual.
-fn quiet_panics<T>(f: impl FnOnce() -> T) -> std::result::Result<T, String> {
+pub(super) fn quiet_panics<T>(f: impl FnOnce() -> T) -> std::result::Result<T, String> {
     static HOOK: Once = Once::new();
     HOOK.call_once(|| {
         let previous = std::panic::take_hook();
@@ -327,7 +307,7 @@ fn quiet_panics<T>(f: impl FnOnce() -> T) -> std::result::Result<T, String> {
 fn read_parquet_unguarded(path: &Path, tag: &str, columns: &ColumnMap) -> Result<TagSamples> {
     let corrupt =
         |e: Box<dyn std::error::Error + Send + Sync>| IoError::CorruptParquet { path: path.to_path_buf(), source: e };
-    let file = open(path)?;
+    let file = open_file(path)?;
     let builder = ParquetRecordBatchReaderBuilder::try_new(file).map_err(|e| corrupt(e.into()))?;
     let schema = builder.schema().clone();
     let find = |role: &'static str, name: &str, ok: fn(&DataType) -> bool, expected| {
@@ -365,12 +345,7 @@ fn read_parquet_unguarded(path: &Path, tag: &str, columns: &ColumnMap) -> Result
         |t| matches!(t, DataType::Timestamp(..) | DataType::Int64 | DataType::Int32),
         TIME_TYPES,
     )?;
-    let i_value = find(
-        VALUE,
-        &columns.value,
-        |t| matches!(t, DataType::Float64 | DataType::Float32 | DataType::Int64 | DataType::Int32),
-        VALUE_TYPES,
-    )?;
+    let i_value = find(VALUE, &columns.value, is_numeric, VALUE_TYPES)?;
 
     // Top-level Arrow fields are the Parquet schema's root columns, in order.
     let mask = ProjectionMask::roots(builder.parquet_schema(), [i_tag, i_time, i_value]);
@@ -411,7 +386,7 @@ fn read_batch(c: &mut Collector, batch: &RecordBatch, columns: &ColumnMap) -> Re
     };
     let matches =
         tag_matches(c, tag_col.as_ref()).ok_or_else(|| type_error(TAG, tag_col.as_ref(), &columns.tag, TAG_TYPES))?;
-    let times = TimeCol::new(time_col.as_ref())
+    let times = TimeCol::new(time_col.as_ref(), EpochUnit::Seconds)
         .ok_or_else(|| type_error(TIME, time_col.as_ref(), &columns.time, TIME_TYPES))?;
     let values = ValueCol::new(value_col.as_ref())
         .ok_or_else(|| type_error(VALUE, value_col.as_ref(), &columns.value, VALUE_TYPES))?;
@@ -441,40 +416,6 @@ fn read_batch(c: &mut Collector, batch: &RecordBatch, columns: &ColumnMap) -> Re
         c.push(row, ts, values.get(i));
     }
     Ok(())
-}
-
-/// A string column of any of the accepted layouts.
-enum StrCol<'a> {
-    Utf8(&'a arrow_array::StringArray),
-    Large(&'a arrow_array::LargeStringArray),
-    View(&'a StringViewArray),
-}
-
-impl<'a> StrCol<'a> {
-    fn new(a: &'a dyn Array) -> Option<Self> {
-        match a.data_type() {
-            DataType::Utf8 => a.as_string_opt::<i32>().map(StrCol::Utf8),
-            DataType::LargeUtf8 => a.as_string_opt::<i64>().map(StrCol::Large),
-            DataType::Utf8View => a.as_string_view_opt().map(StrCol::View),
-            _ => None,
-        }
-    }
-
-    fn get(&self, i: usize) -> Option<&'a str> {
-        match self {
-            StrCol::Utf8(a) => (!a.is_null(i)).then(|| a.value(i)),
-            StrCol::Large(a) => (!a.is_null(i)).then(|| a.value(i)),
-            StrCol::View(a) => (!a.is_null(i)).then(|| a.value(i)),
-        }
-    }
-
-    fn len(&self) -> usize {
-        match self {
-            StrCol::Utf8(a) => a.len(),
-            StrCol::Large(a) => a.len(),
-            StrCol::View(a) => a.len(),
-        }
-    }
 }
 
 /// For each row, whether its tag is the wanted one; other tags are noted.
@@ -522,83 +463,4 @@ fn tag_matches(c: &mut Collector, col: &dyn Array) -> Option<Vec<bool>> {
         })
         .collect();
     Some(out)
-}
-
-/// A time column: timestamps of any unit, or integer epoch seconds.
-enum TimeCol<'a> {
-    Sec(&'a PrimitiveArray<TimestampSecondType>),
-    Milli(&'a PrimitiveArray<TimestampMillisecondType>),
-    Micro(&'a PrimitiveArray<TimestampMicrosecondType>),
-    Nano(&'a PrimitiveArray<TimestampNanosecondType>),
-    EpochSec64(&'a PrimitiveArray<Int64Type>),
-    EpochSec32(&'a PrimitiveArray<Int32Type>),
-}
-
-impl<'a> TimeCol<'a> {
-    fn new(a: &'a dyn Array) -> Option<Self> {
-        Some(match a.data_type() {
-            DataType::Timestamp(TimeUnit::Second, _) => TimeCol::Sec(a.as_primitive_opt()?),
-            DataType::Timestamp(TimeUnit::Millisecond, _) => TimeCol::Milli(a.as_primitive_opt()?),
-            DataType::Timestamp(TimeUnit::Microsecond, _) => TimeCol::Micro(a.as_primitive_opt()?),
-            DataType::Timestamp(TimeUnit::Nanosecond, _) => TimeCol::Nano(a.as_primitive_opt()?),
-            DataType::Int64 => TimeCol::EpochSec64(a.as_primitive_opt()?),
-            DataType::Int32 => TimeCol::EpochSec32(a.as_primitive_opt()?),
-            _ => return None,
-        })
-    }
-
-    /// Microseconds UTC; `Ok(None)` for null; `Err(raw text)` on overflow.
-    fn micros(&self, i: usize) -> std::result::Result<Option<i64>, String> {
-        fn scale<T: arrow_array::ArrowPrimitiveType<Native = i64>>(
-            a: &PrimitiveArray<T>,
-            i: usize,
-            factor: i64,
-            unit: &str,
-        ) -> std::result::Result<Option<i64>, String> {
-            if a.is_null(i) {
-                return Ok(None);
-            }
-            let v = a.value(i);
-            v.checked_mul(factor).map(Some).ok_or_else(|| format!("{v} {unit}"))
-        }
-        match self {
-            TimeCol::Sec(a) => scale(*a, i, 1_000_000, "s"),
-            TimeCol::Milli(a) => scale(*a, i, 1_000, "ms"),
-            TimeCol::Micro(a) => scale(*a, i, 1, "us"),
-            TimeCol::Nano(a) => Ok((!a.is_null(i)).then(|| a.value(i).div_euclid(1_000))),
-            TimeCol::EpochSec64(a) => scale(*a, i, 1_000_000, "epoch seconds"),
-            TimeCol::EpochSec32(a) => Ok((!a.is_null(i)).then(|| i64::from(a.value(i)) * 1_000_000)),
-        }
-    }
-}
-
-/// A value column of any accepted numeric type.
-enum ValueCol<'a> {
-    F64(&'a PrimitiveArray<Float64Type>),
-    F32(&'a PrimitiveArray<Float32Type>),
-    I64(&'a PrimitiveArray<Int64Type>),
-    I32(&'a PrimitiveArray<Int32Type>),
-}
-
-impl<'a> ValueCol<'a> {
-    fn new(a: &'a dyn Array) -> Option<Self> {
-        Some(match a.data_type() {
-            DataType::Float64 => ValueCol::F64(a.as_primitive_opt()?),
-            DataType::Float32 => ValueCol::F32(a.as_primitive_opt()?),
-            DataType::Int64 => ValueCol::I64(a.as_primitive_opt()?),
-            DataType::Int32 => ValueCol::I32(a.as_primitive_opt()?),
-            _ => return None,
-        })
-    }
-
-    /// The value as f64; None for null.
-    fn get(&self, i: usize) -> Option<f64> {
-        match self {
-            ValueCol::F64(a) => (!a.is_null(i)).then(|| a.value(i)),
-            ValueCol::F32(a) => (!a.is_null(i)).then(|| f64::from(a.value(i))),
-            // Integers beyond 2^53 lose their last digits, as any f64 would.
-            ValueCol::I64(a) => (!a.is_null(i)).then(|| a.value(i) as f64),
-            ValueCol::I32(a) => (!a.is_null(i)).then(|| f64::from(a.value(i))),
-        }
-    }
 }

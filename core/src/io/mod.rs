@@ -1,12 +1,19 @@
-//! Readers: one tag's samples from a long-format file (one row per sample).
+//! Input and output files.
 //!
-//! [`read_tag`] reads the rows of one tag from a CSV or Parquet file, chosen
-//! by the file name ([`Format::from_path`]), through a [`ColumnMap`] that
-//! names the tag, time and value columns (`tag`, `ts`, `value` by default),
-//! and returns [`TagSamples`]: times as i64 microseconds UTC, values as f64,
-//! sorted by time.
+//! - [`InputSet`] is the input of a pipeline run. Long format (one row per
+//!   sample: tag, time, value, optional quality) or wide format (one time
+//!   column, one column per tag), CSV or Parquet, several files merged. Local
+//!   times in the site's zone with a stated daylight-saving rule; quality
+//!   codes (OPC byte, OPC UA, words) mapped to good / uncertain / bad;
+//!   duplicates, non-finite values and a time window handled by stated
+//!   rules; tag-ordered files read tag by tag without holding the whole file.
+//!   The rules are written out for users in `docs/input.md`.
+//! - [`CleanedWriter`] writes `cleaned.parquet`.
+//! - [`OutputDir`] makes all-or-nothing outputs through a staging directory.
+//! - [`read_tag`] reads one tag's samples from one long-format file (the `fit`
+//!   command), with the simpler rules below.
 //!
-//! # Stated rules
+//! # Rules of [`read_tag`]
 //!
 //! - Rows of other tags are skipped without looking at their time or value
 //!   (a CSV row with the wrong number of fields or invalid UTF-8 is an error
@@ -18,20 +25,13 @@
 //!   microseconds) are an error naming the time and both rows.
 //! - An empty or null value is missing (NaN). A value that is NaN or
 //!   infinite is kept as missing (NaN) and counted ([`ReadStats::n_non_finite`]).
-//! - A quality column, if the file has one, is not read yet.
-//!
-//! # Times
-//!
-//! - Parquet: a timestamp column of any unit (s, ms, us, ns), with or without
-//!   a time zone (an Arrow timestamp with a zone is an instant, so the zone
-//!   does not change the value), or an Int64 / Int32 column of **epoch
-//!   seconds**.
-//! - CSV: RFC 3339 text (`2026-03-01T06:00:05Z`, `2026-03-01T07:00:05+01:00`,
-//!   fractions of a second allowed), or whole epoch seconds (`1772344805`).
-//! - Naive times (a Parquet timestamp without a zone, CSV text without an
-//!   offset such as `2026-03-01 06:00:05`) are read as UTC for now; site
-//!   time zones come with the pipeline configuration.
-//! - Sub-microsecond parts are dropped (rounded towards the past).
+//! - A quality column is not read.
+//! - Times: a Parquet timestamp column of any unit (s, ms, us, ns), with or
+//!   without a zone, or an Int64 / Int32 column of **epoch seconds**; CSV
+//!   RFC 3339 text (`2026-03-01T06:00:05Z`, `2026-03-01T07:00:05+01:00`),
+//!   a date and time without offset, or whole epoch seconds. Naive times are
+//!   read as UTC ([`InputSet`] reads them in the site's zone).
+//!   Sub-microsecond parts are dropped (rounded towards the past).
 //!
 //! ```
 //! use tagwright::io::{infer_period_us, read_tag, ColumnMap};
@@ -48,13 +48,63 @@
 //! assert!(s.values[1].is_nan());
 //! assert_eq!(infer_period_us(&s.ts_us), Some(5_000_000));
 //! ```
+//!
+//! A run's input and output, end to end:
+//!
+//! ```
+//! use tagwright::io::{CleanedWriter, InputOptions, InputSet, OutputDir};
+//! use tagwright::pipeline::{ColumnNames, Compression, DuplicateRule, EpochUnit, InputFormat, InputSpec, QualityCoding};
+//! use tagwright::series::{Quality, Sampling, TagTable};
+//!
+//! let dir = tempfile::tempdir().unwrap();
+//! let input = dir.path().join("export.csv");
+//! // Local times (Europe/Berlin, UTC+1 in March), OPC quality bytes, sorted by tag.
+//! std::fs::write(&input, "tag,ts,value,quality\n\
+//!     FT-101.PV,2026-03-01 07:00:00,12.0,192\n\
+//!     FT-101.PV,2026-03-01 07:00:05,12.5,64\n\
+//!     TT-204.PV,2026-03-01 07:00:00,81.0,192\n").unwrap();
+//! let spec = InputSpec {
+//!     format: InputFormat::Long,
+//!     columns: ColumnNames { quality: Some("quality".into()), ..ColumnNames::default() },
+//!     epoch_unit: EpochUnit::Seconds,
+//!     quality: QualityCoding::Auto,
+//!     duplicates: DuplicateRule::KeepBest,
+//! };
+//! let set = InputSet::open(&[input], InputOptions { spec: &spec, tz: chrono_tz::Europe::Berlin, window: None }).unwrap();
+//! assert_eq!(set.tags(), ["FT-101.PV", "TT-204.PV"]);
+//! assert!(set.is_streaming());
+//! let series = set.read_tags(set.tags()).unwrap();
+//! assert_eq!(series[0].ts_us[0], 1_772_344_800_000_000); // 2026-03-01T06:00:00Z
+//! assert_eq!(series[0].quality, [Quality::Good, Quality::Uncertain]);
+//!
+//! let out = OutputDir::create(&dir.path().join("out")).unwrap();
+//! let mut w = CleanedWriter::create(&out.path("cleaned.parquet"), "run-1", Compression::Zstd).unwrap();
+//! for s in &series {
+//!     w.write_tag(&TagTable::from_series(s, 5_000_000, Sampling::Regular)).unwrap();
+//! }
+//! assert_eq!(w.close().unwrap(), 3);
+//! out.commit().unwrap();
+//! assert!(dir.path().join("out/cleaned.parquet").exists());
+//! ```
 
+mod atomic;
+mod cols;
 mod error;
+mod input;
 mod long;
+mod long_csv;
+mod long_pq;
+mod output;
+mod quality;
+mod time;
+mod wide;
 
 use std::path::Path;
 
+pub use atomic::{OutputDir, STAGING_PREFIX};
 pub use error::{BoxError, IoError, MAX_TAGS_LISTED};
+pub use input::{InputFileInfo, InputOptions, InputSet};
+pub use output::{cleaned_schema, writer_properties, CleanedWriter, META_RUN_ID, META_VERSION, ROW_GROUP_ROWS};
 
 /// Shorthand for results of this module.
 pub type Result<T> = std::result::Result<T, IoError>;

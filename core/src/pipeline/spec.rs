@@ -18,8 +18,9 @@ pub struct PipelineSpec {
     pub input: InputSpec,
     pub shifts: Vec<ShiftSpec>,
     pub output: OutputSpec,
-    /// Directories external plugins may be loaded from (relative paths are
-    /// relative to the pipeline file).
+    /// Directories external plugins may be loaded from, as written in
+    /// `plugins.allow`, with relative ones joined to the directory of the
+    /// pipeline file.
     pub plugin_dirs: Vec<PathBuf>,
     /// Settings applied to every tag before the rules.
     pub defaults: PartialSettings,
@@ -192,4 +193,71 @@ pub struct ResolvedTag {
     pub rules: Vec<usize>,
     /// The coupling group, if any.
     pub group: Option<GroupSpec>,
+}
+
+/// Parses a duration written as a number followed directly by a unit: `us`,
+/// `ms`, `s`, `m` (minutes) or `h`, as in `500ms`, `5s`, `1.5m`, `1h`.
+/// Returns whole microseconds (>= 0); a duration finer than a microsecond or
+/// beyond the range of `i64` microseconds is an error. Steps use it for their
+/// own duration parameters, so every duration in a pipeline reads the same.
+pub fn parse_duration_us(text: &str) -> Result<i64, String> {
+    const UNITS: [(&str, i64); 5] =
+        [("us", 1), ("ms", 1_000), ("s", 1_000_000), ("m", 60_000_000), ("h", 3_600_000_000)];
+    let bad =
+        || format!("`{text}` is not a duration: write a number and a unit (us, ms, s, m, h), as in 500ms, 5s, 10m, 1h");
+    let split = text.find(|c: char| !(c.is_ascii_digit() || c == '.')).ok_or_else(bad)?;
+    let (number, unit) = text.split_at(split);
+    let scale = UNITS.iter().find(|(u, _)| *u == unit).map(|&(_, f)| f).ok_or_else(bad)?;
+    let (whole, frac) = number.split_once('.').unwrap_or((number, ""));
+    let digits_ok = |d: &str| d.bytes().all(|b| b.is_ascii_digit());
+    if whole.is_empty() || (number.contains('.') && frac.is_empty()) || !digits_ok(whole) || !digits_ok(frac) {
+        return Err(bad());
+    }
+    let too_long = || format!("`{text}` is too long a duration");
+    let whole: i64 = whole.parse().map_err(|_| too_long())?;
+    let mut us = whole.checked_mul(scale).ok_or_else(too_long)?;
+    // The fraction, exactly: digit k (1-based) is worth scale / 10^k.
+    let mut rest = 0i128;
+    let mut denom = 1i128;
+    for d in frac.bytes() {
+        denom = denom.checked_mul(10).ok_or_else(bad)?;
+        rest = rest * 10 + i128::from(d - b'0');
+    }
+    let num = rest * i128::from(scale);
+    if num % denom != 0 {
+        return Err(format!("`{text}` is finer than a microsecond"));
+    }
+    let extra = i64::try_from(num / denom).map_err(|_| too_long())?;
+    us = us.checked_add(extra).ok_or_else(too_long)?;
+    Ok(us)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn durations() {
+        for (text, us) in [
+            ("500ms", 500_000),
+            ("5s", 5_000_000),
+            ("10m", 600_000_000),
+            ("1h", 3_600_000_000),
+            ("250us", 250),
+            ("1.5s", 1_500_000),
+            ("0.25h", 900_000_000),
+            ("0s", 0),
+            ("0.001ms", 1),
+        ] {
+            assert_eq!(parse_duration_us(text), Ok(us), "{text}");
+        }
+        for text in ["", "5", "s", "5 s", "5S", "5sec", "-5s", "1.s", ".5s", "1.2.3s", "5s ", "1e3s", "5d"] {
+            let e = parse_duration_us(text).unwrap_err();
+            assert!(e.contains("is not a duration"), "{text}: {e}");
+        }
+        assert!(parse_duration_us("0.0001ms").unwrap_err().contains("finer than a microsecond"));
+        assert!(parse_duration_us("99999999999999999999h").unwrap_err().contains("too long"));
+        assert!(parse_duration_us("9999999999h").unwrap_err().contains("too long"));
+        assert!(parse_duration_us("0.00000000000000000000000000000000000000001s").is_err());
+    }
 }

@@ -1,0 +1,58 @@
+#!/usr/bin/env bash
+# Engine overhead and memory, measured side by side in one run:
+#  - `tagwright run` with only the quality and range steps, against a bare
+#    arrow-rs read + write of the same file (examples/bare_copy.rs), on
+#    generated long-format files of TAGS x HOURS at 1 s (default 2,000 x 12 h,
+#    about 86 M rows);
+#  - peak memory (/usr/bin/time -v) of both at 200 and at 2,000 tags: for a
+#    tag-ordered file the engine's figure should stay flat as the file grows.
+# Usage: bash core/benches/engine_vs_bare.sh [HOURS] [TAGS...]   (defaults: 12, 200 2000)
+# Files go to $BENCH_DIR (default: a temporary directory, removed at the end).
+set -euo pipefail
+repo="$(cd "$(dirname "${BASH_SOURCE[0]}")/../.." && pwd)"
+cd "$repo"
+hours="${1:-12}"
+shift || true
+tag_counts=("${@:-200 2000}")
+# shellcheck disable=SC2206
+tag_counts=(${tag_counts[*]})
+
+cargo build --release -q -p tagwright-cli --bin tagwright
+cargo build --release -q -p tagwright --example bare_copy --example gen_long
+bin="$repo/target/release"
+dir="${BENCH_DIR:-$(mktemp -d)}"
+[ -n "${BENCH_DIR:-}" ] || trap 'rm -rf "$dir"' EXIT
+cat > "$dir/bench.yaml" <<'YAML'
+version: 1
+site: {timezone: UTC}
+input: {format: long, columns: {tag: tag, time: ts, value: value, quality: quality}, quality: opc}
+rules:
+  - tags: "*"
+    range: [-1000000, 1000000]
+    steps: [quality, range]
+YAML
+
+# peak_kb and seconds of a command, from GNU time.
+measure() {
+    local log="$dir/time.log"
+    /usr/bin/time -v "$@" > "$dir/cmd.out" 2> "$log" || { cat "$dir/cmd.out" "$log" >&2; exit 1; }
+    local kb secs
+    kb=$(awk -F': ' '/Maximum resident set size/ {print $2}' "$log")
+    secs=$(awk -F': ' '/Elapsed \(wall clock\)/ {print $2}' "$log" | awk -F: '{ if (NF==3) print $1*3600+$2*60+$3; else print $1*60+$2 }')
+    echo "$kb $secs"
+}
+
+printf '%-6s %-12s %-10s %-10s %-8s %-14s %-14s\n' tags rows bare_s engine_s ratio bare_peak_MB engine_peak_MB
+for tags in "${tag_counts[@]}"; do
+    file="$dir/long_${tags}.parquet"
+    "$bin/examples/gen_long" "$tags" "$hours" "$file" > /dev/null
+    rows=$((tags * hours * 3600))
+    read -r bare_kb bare_s < <(measure "$bin/examples/bare_copy" "$file" "$dir/copy.parquet" zstd --reps 1)
+    read -r eng_kb eng_s < <(measure "$bin/tagwright" run --pipeline "$dir/bench.yaml" --input "$file" --out "$dir/run_$tags" --threads 1)
+    ratio=$(awk -v a="$eng_s" -v b="$bare_s" 'BEGIN { printf "%.2f", a / b }')
+    printf '%-6s %-12s %-10s %-10s %-8s %-14s %-14s\n' "$tags" "$rows" "$bare_s" "$eng_s" "$ratio" \
+        "$((bare_kb / 1024))" "$((eng_kb / 1024))"
+    rm -f "$file" "$dir/copy.parquet"
+done
+echo "ratio = engine seconds / bare read+write seconds (target <= 1.30); both on one thread."
+echo "bare_copy also times tagwright's own input/output path; run it alone for that figure."

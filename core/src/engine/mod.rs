@@ -1,0 +1,368 @@
+//! The run engine: reads the input, runs each selected tag's chain of steps
+//! (tags coupled by a group run together), writes `cleaned.parquet` and
+//! `provenance.jsonl` atomically, and carries each tag's step state to the
+//! next run.
+//!
+//! Work flows one way in chunks: the tags to clean are sorted; a chunk of
+//! work units (a tag, or a group) is read, processed in parallel on a rayon
+//! pool, and written in sorted tag order before the next chunk is read, so
+//! memory holds about one chunk whatever the file size (for a tag-ordered
+//! input). The output is the same bytes whatever the thread count: results
+//! are written in tag order and nothing depends on scheduling.
+
+mod events;
+mod provenance;
+mod state;
+
+use std::collections::{BTreeMap, BTreeSet};
+use std::path::PathBuf;
+use std::sync::Arc;
+use std::time::Instant;
+
+use rayon::prelude::*;
+use sha2::{Digest, Sha256};
+
+pub use events::{events, Event};
+pub use provenance::CAUTION;
+
+use crate::io::{infer_period_us, CleanedWriter, InputOptions, InputSet, IoError, OutputDir};
+use crate::pipeline::{PipelineSpec, ResolvedTag};
+use crate::plugin::{Registry, Step, StepContext, TagWork};
+use crate::series::{Fault, Status, TagSeries, TagTable};
+
+/// Options of one run.
+#[derive(Debug, Clone, Default)]
+pub struct RunOptions {
+    /// Input files (long or wide, CSV or Parquet, as the pipeline says).
+    pub inputs: Vec<PathBuf>,
+    /// Output directory.
+    pub out_dir: PathBuf,
+    /// Run window [from, to) in µs UTC, and how it was given (for provenance).
+    pub window: Option<(i64, i64)>,
+    pub window_label: Option<String>,
+    /// Directory holding the state carried between runs.
+    pub state_dir: Option<PathBuf>,
+    /// Worker threads (None: all cores).
+    pub threads: Option<usize>,
+    /// The command line, for provenance.
+    pub command_line: Vec<String>,
+    /// Work units per chunk (None: 8 per thread).
+    pub chunk_units: Option<usize>,
+}
+
+/// Why a run could not be done at all (a tag's failure is not an error).
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum EngineError {
+    /// An input file could not be read (exit code 3).
+    #[error(transparent)]
+    Input(IoError),
+    /// Writing the outputs failed.
+    #[error(transparent)]
+    Output(IoError),
+    /// The pipeline names a step the registry cannot make (exit code 1).
+    #[error("{0}")]
+    Config(String),
+    /// The carried state could not be read or written.
+    #[error("state: {0}")]
+    State(String),
+    /// The worker pool could not be started.
+    #[error("thread pool: {0}")]
+    Threads(String),
+}
+
+/// What a run did, for the summary and the exit code.
+#[derive(Debug, Clone, Default)]
+pub struct RunOutcome {
+    pub run_id: String,
+    /// Tags whose chain ran to the end.
+    pub tags_processed: usize,
+    /// Tags that failed, with the reason (their rows are written raw).
+    pub tags_failed: Vec<(String, String)>,
+    /// Tags in the input that no rule selects.
+    pub tags_not_selected: usize,
+    /// Output rows by status (ok, filled, replaced, rejected).
+    pub rows_by_status: [u64; 4],
+    /// Rows by fault kind.
+    pub faults: BTreeMap<&'static str, u64>,
+    /// Provenance events written.
+    pub events: u64,
+    pub seconds: f64,
+    /// The files written.
+    pub outputs: Vec<PathBuf>,
+    /// Whether the input was read tag group by tag group.
+    pub streaming: bool,
+}
+
+/// A tag (or group of tags) and the chain it runs.
+struct Unit {
+    tags: Vec<(String, ResolvedTag)>,
+    chain: Vec<Arc<dyn Step>>,
+    names: Vec<String>,
+}
+
+/// The result of one tag.
+struct TagResult {
+    table: TagTable,
+    work_report: crate::plugin::TagReport,
+    state: BTreeMap<String, serde_json::Value>,
+    counts: crate::series::ReadCounts,
+    error: Option<String>,
+    step_names: Vec<String>,
+    group: Option<String>,
+}
+
+/// Runs a pipeline. `progress(done, total)` is called after each chunk.
+pub fn run(
+    spec: &PipelineSpec,
+    registry: &Registry,
+    opts: &RunOptions,
+    progress: &(dyn Fn(usize, usize) + Sync),
+) -> Result<RunOutcome, EngineError> {
+    let started = Instant::now();
+    let started_at = chrono::Utc::now();
+    let input = InputSet::open(
+        &opts.inputs,
+        InputOptions { spec: &spec.input, tz: spec.site.timezone, window: opts.window },
+    )
+    .map_err(EngineError::Input)?;
+
+    // Selection and work units, in sorted tag order.
+    let mut outcome = RunOutcome { streaming: input.is_streaming(), ..Default::default() };
+    let mut units: Vec<Unit> = Vec::new();
+    let mut group_unit: BTreeMap<String, usize> = BTreeMap::new();
+    for tag in input.tags() {
+        let Some(resolved) = spec.resolve(tag).filter(|r| !r.steps.is_empty()) else {
+            outcome.tags_not_selected += 1;
+            continue;
+        };
+        if let Some(g) = resolved.group.as_ref().map(|g| g.id.clone()) {
+            if let Some(&u) = group_unit.get(&g) {
+                units[u].tags.push((tag.clone(), resolved));
+                continue;
+            }
+            group_unit.insert(g, units.len());
+        }
+        let mut chain = Vec::with_capacity(resolved.steps.len());
+        for s in &resolved.steps {
+            chain.push(registry.make(&s.name, &s.params).map_err(|e| {
+                EngineError::Config(format!("{}:{}: {e}", spec.path.display(), s.line))
+            })?);
+        }
+        let names = resolved.steps.iter().map(|s| s.name.clone()).collect();
+        units.push(Unit { tags: vec![(tag.clone(), resolved)], chain, names });
+    }
+    let selected: Vec<String> = {
+        let mut v: Vec<String> = units.iter().flat_map(|u| u.tags.iter().map(|(t, _)| t.clone())).collect();
+        v.sort();
+        v
+    };
+
+    let run_id = run_id(spec, &input, opts);
+    outcome.run_id = run_id.clone();
+    let mut state_in = state::load(opts.state_dir.as_deref()).map_err(EngineError::State)?;
+    let mut state_out: BTreeMap<String, BTreeMap<String, serde_json::Value>> = BTreeMap::new();
+
+    let out = OutputDir::create(&opts.out_dir).map_err(EngineError::Output)?;
+    let mut writer =
+        CleanedWriter::create(&out.path("cleaned.parquet"), &run_id, spec.output.compression).map_err(EngineError::Output)?;
+    let mut prov = provenance::Body::new();
+
+    let pool = rayon::ThreadPoolBuilder::new()
+        .num_threads(opts.threads.unwrap_or(0))
+        .build()
+        .map_err(|e| EngineError::Threads(e.to_string()))?;
+    let chunk = opts.chunk_units.unwrap_or_else(|| 8 * pool.current_num_threads()).max(1);
+
+    // Results wait here until every tag before them in sorted order is written.
+    let mut pending: BTreeMap<String, TagResult> = BTreeMap::new();
+    let mut next = 0usize;
+    let total = units.len();
+    for (ci, batch) in units.chunks(chunk).enumerate() {
+        let names: Vec<String> = batch.iter().flat_map(|u| u.tags.iter().map(|(t, _)| t.clone())).collect();
+        let series = input.read_tags(&names).map_err(EngineError::Input)?;
+        let mut by_tag: BTreeMap<String, TagSeries> = series.into_iter().map(|s| (s.tag.clone(), s)).collect();
+        let jobs: Vec<(&Unit, Vec<TagSeries>, Vec<BTreeMap<String, serde_json::Value>>)> = batch
+            .iter()
+            .map(|u| {
+                let s: Vec<TagSeries> = u.tags.iter().filter_map(|(t, _)| by_tag.remove(t)).collect();
+                let st = u.tags.iter().map(|(t, _)| state_in.remove(t).unwrap_or_default()).collect();
+                (u, s, st)
+            })
+            .collect();
+        let results: Vec<Vec<TagResult>> =
+            pool.install(|| jobs.into_par_iter().map(|(u, s, st)| run_unit(u, s, st)).collect());
+        for r in results.into_iter().flatten() {
+            pending.insert(r.table.tag.clone(), r);
+        }
+        while next < selected.len() {
+            let Some(r) = pending.remove(&selected[next]) else { break };
+            write_result(&r, &mut writer, &mut prov, &mut outcome).map_err(EngineError::Output)?;
+            state_out.insert(r.table.tag.clone(), r.state);
+            next += 1;
+        }
+        progress(((ci + 1) * chunk).min(total), total);
+    }
+    // Tags whose results never came (a read returned nothing for them).
+    while next < selected.len() {
+        if let Some(r) = pending.remove(&selected[next]) {
+            write_result(&r, &mut writer, &mut prov, &mut outcome).map_err(EngineError::Output)?;
+            state_out.insert(r.table.tag.clone(), r.state);
+        }
+        next += 1;
+    }
+    writer.close().map_err(EngineError::Output)?;
+
+    let finished_at = chrono::Utc::now();
+    let run = provenance::RunRecord::new(spec, &input, opts, &run_id, started_at, finished_at, &outcome);
+    prov.write(&out.path("provenance.jsonl"), &run).map_err(EngineError::Output)?;
+    if let Some(dir) = &opts.state_dir {
+        // Tags not in this run keep their earlier state.
+        for (tag, st) in state_in {
+            state_out.entry(tag).or_insert(st);
+        }
+        state::save(dir, &state_out).map_err(EngineError::State)?;
+    }
+    out.commit().map_err(EngineError::Output)?;
+    outcome.outputs = vec![opts.out_dir.join("cleaned.parquet"), opts.out_dir.join("provenance.jsonl")];
+    outcome.seconds = started.elapsed().as_secs_f64();
+    Ok(outcome)
+}
+
+/// Content-derived run id: the same tool version, pipeline, inputs and window
+/// give the same id, so a repeated run writes identical files.
+fn run_id(spec: &PipelineSpec, input: &InputSet, opts: &RunOptions) -> String {
+    let mut h = Sha256::new();
+    h.update(env!("CARGO_PKG_VERSION"));
+    h.update(&spec.sha256);
+    for f in input.files() {
+        h.update(&f.sha256);
+    }
+    if let Some((a, b)) = opts.window {
+        h.update(a.to_le_bytes());
+        h.update(b.to_le_bytes());
+    }
+    hex::encode(&h.finalize()[..8])
+}
+
+fn run_unit(unit: &Unit, series: Vec<TagSeries>, states: Vec<BTreeMap<String, serde_json::Value>>) -> Vec<TagResult> {
+    let mut works: Vec<TagWork> = Vec::with_capacity(series.len());
+    let mut counts = Vec::with_capacity(series.len());
+    for (s, state) in series.into_iter().zip(states) {
+        let resolved = unit.tags.iter().find(|(t, _)| *t == s.tag).map(|(_, r)| r);
+        let settings = resolved.map(|r| r.settings.clone()).unwrap_or_default();
+        let period = settings.period_us.or_else(|| infer_period_us(&s.ts_us)).unwrap_or(1_000_000);
+        let table = TagTable::from_series(&s, period, settings.sampling);
+        counts.push(s.counts);
+        works.push(TagWork { table, settings: Arc::new(settings), report: Default::default(), state });
+    }
+    let group = unit.tags.first().and_then(|(_, r)| r.group.as_ref().map(|g| g.id.clone()));
+    let originals: Vec<TagTable> = works.iter().map(|w| w.table.clone()).collect();
+    let error = run_chain(unit, &mut works);
+    works
+        .into_iter()
+        .zip(originals)
+        .zip(counts)
+        .map(|((w, original), counts)| {
+            let (table, error) = match &error {
+                // A failed tag keeps its raw readings; the provenance says why.
+                Some(e) => (original, Some(e.clone())),
+                None => match w.table.check() {
+                    Ok(()) => (w.table, None),
+                    Err(e) => (original, Some(format!("internal check failed: {e}"))),
+                },
+            };
+            TagResult {
+                table,
+                work_report: w.report,
+                state: w.state,
+                counts,
+                error,
+                step_names: unit.names.clone(),
+                group: group.clone(),
+            }
+        })
+        .collect()
+}
+
+/// Runs the chain; a step error or panic fails the whole unit.
+fn run_chain(unit: &Unit, works: &mut [TagWork]) -> Option<String> {
+    for (i, step) in unit.chain.iter().enumerate() {
+        let ctx = StepContext { index: i as u16 };
+        let result = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+            if step.couples_tags() {
+                step.apply(works, &ctx)
+            } else {
+                works.iter_mut().try_for_each(|w| step.apply(std::slice::from_mut(w), &ctx))
+            }
+        }));
+        match result {
+            Ok(Ok(())) => {}
+            Ok(Err(e)) => return Some(e.to_string()),
+            Err(panic) => {
+                let msg = panic
+                    .downcast_ref::<&str>()
+                    .map(|s| s.to_string())
+                    .or_else(|| panic.downcast_ref::<String>().cloned())
+                    .unwrap_or_else(|| "unknown panic".into());
+                return Some(format!("step `{}` panicked: {msg}", step.name()));
+            }
+        }
+    }
+    None
+}
+
+fn write_result(
+    r: &TagResult,
+    writer: &mut CleanedWriter,
+    prov: &mut provenance::Body,
+    outcome: &mut RunOutcome,
+) -> Result<(), IoError> {
+    writer.write_tag(&r.table)?;
+    let evs = if r.error.is_none() { events(&r.table, &r.step_names) } else { Vec::new() };
+    let mut by_status = [0u64; 4];
+    let mut faults: BTreeMap<&'static str, u64> = BTreeMap::new();
+    for i in 0..r.table.len() {
+        by_status[r.table.status[i] as usize] += 1;
+        if let Some(f) = r.table.fault[i] {
+            *faults.entry(f.as_str()).or_default() += 1;
+        }
+    }
+    for k in 0..4 {
+        outcome.rows_by_status[k] += by_status[k];
+    }
+    for (f, c) in &faults {
+        *outcome.faults.entry(f).or_default() += c;
+    }
+    outcome.events += evs.len() as u64;
+    match &r.error {
+        Some(e) => outcome.tags_failed.push((r.table.tag.clone(), e.clone())),
+        None => outcome.tags_processed += 1,
+    }
+    prov.tag(r, &by_status, &faults);
+    for e in &evs {
+        prov.event(e);
+    }
+    Ok(())
+}
+
+/// Statuses in output order, for summaries.
+pub fn status_names() -> [&'static str; 4] {
+    Status::ALL.map(Status::as_str)
+}
+
+/// Fault kinds in output order, for summaries.
+pub fn fault_names() -> [&'static str; 7] {
+    Fault::ALL.map(Fault::as_str)
+}
+
+/// Tags grouped by their group id (for `check`).
+pub fn groups(spec: &PipelineSpec, tags: &[String]) -> BTreeMap<String, BTreeSet<String>> {
+    let mut out: BTreeMap<String, BTreeSet<String>> = BTreeMap::new();
+    for t in tags {
+        if let Some(g) = spec.resolve(t).and_then(|r| r.group) {
+            out.entry(g.id).or_default().insert(t.clone());
+        }
+    }
+    out
+}

@@ -1,0 +1,354 @@
+//! Typed views of Arrow columns for the Parquet readers: string (tag, text
+//! quality), time, numeric value and quality columns in every layout the
+//! readers accept.
+
+use arrow_array::cast::AsArray;
+use arrow_array::types::{
+    Float32Type, Float64Type, Int16Type, Int32Type, Int64Type, Int8Type, TimestampMicrosecondType,
+    TimestampMillisecondType, TimestampNanosecondType, TimestampSecondType, UInt16Type, UInt32Type, UInt64Type,
+    UInt8Type,
+};
+use arrow_array::{Array, BooleanArray, PrimitiveArray, StringViewArray};
+use arrow_schema::{DataType, TimeUnit};
+
+use super::quality::RawQuality;
+use crate::pipeline::EpochUnit;
+
+/// Types accepted for a tag column.
+pub(super) const TAG_TYPES: &str = "a string (Utf8, LargeUtf8, Utf8View, or a dictionary of strings)";
+/// Types accepted for a time column.
+pub(super) const TIME_TYPES: &str =
+    "a timestamp (any unit, with or without time zone) or an Int64/Int32 epoch in the pipeline's epoch unit";
+/// Types accepted for a value column (and for the tag columns of a wide file).
+pub(super) const VALUE_TYPES: &str = "numeric (Float64/32, Int64/32/16/8, UInt64/32/16/8, or Boolean as 0/1)";
+/// Types accepted for a quality column.
+pub(super) const QUALITY_TYPES: &str = "an integer (Int8-64, UInt8-64) or a string (or a dictionary of strings)";
+
+pub(super) fn is_string(t: &DataType) -> bool {
+    matches!(t, DataType::Utf8 | DataType::LargeUtf8 | DataType::Utf8View)
+}
+
+/// A string column, or a dictionary of strings.
+pub(super) fn is_string_like(t: &DataType) -> bool {
+    match t {
+        DataType::Dictionary(_, v) => is_string(v),
+        t => is_string(t),
+    }
+}
+
+pub(super) fn is_time(t: &DataType) -> bool {
+    matches!(t, DataType::Timestamp(..) | DataType::Int64 | DataType::Int32)
+}
+
+pub(super) fn is_integer(t: &DataType) -> bool {
+    matches!(
+        t,
+        DataType::Int8
+            | DataType::Int16
+            | DataType::Int32
+            | DataType::Int64
+            | DataType::UInt8
+            | DataType::UInt16
+            | DataType::UInt32
+            | DataType::UInt64
+    )
+}
+
+pub(super) fn is_numeric(t: &DataType) -> bool {
+    is_integer(t) || matches!(t, DataType::Float64 | DataType::Float32 | DataType::Boolean)
+}
+
+/// A timestamp type without a zone: its values are local wall-clock times.
+pub(super) fn is_naive_timestamp(t: &DataType) -> bool {
+    matches!(t, DataType::Timestamp(_, None))
+}
+
+/// A string column of any of the accepted layouts.
+pub(super) enum StrCol<'a> {
+    Utf8(&'a arrow_array::StringArray),
+    Large(&'a arrow_array::LargeStringArray),
+    View(&'a StringViewArray),
+}
+
+impl<'a> StrCol<'a> {
+    pub(super) fn new(a: &'a dyn Array) -> Option<Self> {
+        match a.data_type() {
+            DataType::Utf8 => a.as_string_opt::<i32>().map(StrCol::Utf8),
+            DataType::LargeUtf8 => a.as_string_opt::<i64>().map(StrCol::Large),
+            DataType::Utf8View => a.as_string_view_opt().map(StrCol::View),
+            _ => None,
+        }
+    }
+
+    pub(super) fn get(&self, i: usize) -> Option<&'a str> {
+        match self {
+            StrCol::Utf8(a) => (!a.is_null(i)).then(|| a.value(i)),
+            StrCol::Large(a) => (!a.is_null(i)).then(|| a.value(i)),
+            StrCol::View(a) => (!a.is_null(i)).then(|| a.value(i)),
+        }
+    }
+
+    pub(super) fn len(&self) -> usize {
+        match self {
+            StrCol::Utf8(a) => a.len(),
+            StrCol::Large(a) => a.len(),
+            StrCol::View(a) => a.len(),
+        }
+    }
+}
+
+/// A string column or a dictionary of strings. Rows of a dictionary are
+/// told apart by key, so equal neighbours cost one comparison of integers.
+pub(super) enum TextCol<'a> {
+    Plain(StrCol<'a>),
+    Dict { keys: Vec<usize>, nulls: Vec<bool>, values: StrCol<'a> },
+}
+
+impl<'a> TextCol<'a> {
+    pub(super) fn new(a: &'a dyn Array) -> Option<Self> {
+        if let Some(dict) = a.as_any_dictionary_opt() {
+            let values = StrCol::new(dict.values().as_ref())?;
+            let n_values = values.len();
+            let keys = dict.normalized_keys();
+            // A null row, or a key outside the dictionary (a damaged file), reads as null.
+            let nulls = (0..a.len()).map(|i| a.is_null(i) || keys.get(i).is_none_or(|&k| k >= n_values)).collect();
+            return Some(TextCol::Dict { keys, nulls, values });
+        }
+        StrCol::new(a).map(TextCol::Plain)
+    }
+
+    /// The text of row `i`; `None` for null.
+    pub(super) fn get(&self, i: usize) -> Option<&'a str> {
+        match self {
+            TextCol::Plain(s) => s.get(i),
+            TextCol::Dict { keys, nulls, values } => {
+                if nulls.get(i).copied().unwrap_or(true) {
+                    return None;
+                }
+                keys.get(i).and_then(|&k| values.get(k))
+            }
+        }
+    }
+
+    /// True when rows `i` and `j` certainly hold the same text (same
+    /// dictionary key); false means "compare the texts".
+    pub(super) fn same_key(&self, i: usize, j: usize) -> bool {
+        match self {
+            TextCol::Dict { keys, nulls, .. } => {
+                keys.get(i) == keys.get(j)
+                    && !nulls.get(i).copied().unwrap_or(true)
+                    && !nulls.get(j).copied().unwrap_or(true)
+            }
+            TextCol::Plain(_) => false,
+        }
+    }
+}
+
+/// A time column: timestamps of any unit (a zone makes them instants, no
+/// zone local times), or integer epochs in the pipeline's unit.
+pub(super) struct TimeCol<'a> {
+    values: Ints<'a>,
+    scale: Scale,
+    /// The column has a null somewhere (checked per row only then).
+    has_nulls: bool,
+    /// The values are local wall-clock times.
+    pub(super) local: bool,
+    unit: &'static str,
+}
+
+enum Ints<'a> {
+    I64(&'a [i64], &'a dyn Array),
+    I32(&'a [i32], &'a dyn Array),
+}
+
+#[derive(Clone, Copy)]
+enum Scale {
+    Mul(i64),
+    /// Floor division (nanoseconds to microseconds).
+    Div(i64),
+}
+
+impl<'a> TimeCol<'a> {
+    pub(super) fn new(a: &'a dyn Array, epoch: EpochUnit) -> Option<Self> {
+        let (values, scale, unit) = match a.data_type() {
+            DataType::Timestamp(TimeUnit::Second, _) => {
+                (Ints::I64(a.as_primitive_opt::<TimestampSecondType>()?.values(), a), Scale::Mul(1_000_000), "s")
+            }
+            DataType::Timestamp(TimeUnit::Millisecond, _) => {
+                (Ints::I64(a.as_primitive_opt::<TimestampMillisecondType>()?.values(), a), Scale::Mul(1_000), "ms")
+            }
+            DataType::Timestamp(TimeUnit::Microsecond, _) => {
+                (Ints::I64(a.as_primitive_opt::<TimestampMicrosecondType>()?.values(), a), Scale::Mul(1), "us")
+            }
+            DataType::Timestamp(TimeUnit::Nanosecond, _) => {
+                (Ints::I64(a.as_primitive_opt::<TimestampNanosecondType>()?.values(), a), Scale::Div(1_000), "ns")
+            }
+            DataType::Int64 => (Ints::I64(a.as_primitive_opt::<Int64Type>()?.values(), a), epoch_scale(epoch), "epoch"),
+            DataType::Int32 => (Ints::I32(a.as_primitive_opt::<Int32Type>()?.values(), a), epoch_scale(epoch), "epoch"),
+            _ => return None,
+        };
+        Some(TimeCol { values, scale, has_nulls: a.null_count() > 0, local: is_naive_timestamp(a.data_type()), unit })
+    }
+
+    /// Microseconds (UTC, or on the local clock when `local`); `Ok(None)`
+    /// for null; `Err(raw text)` on overflow.
+    pub(super) fn micros(&self, i: usize) -> Result<Option<i64>, String> {
+        let (v, arr) = match self.values {
+            Ints::I64(v, a) => (v.get(i).copied(), a),
+            Ints::I32(v, a) => (v.get(i).map(|&x| i64::from(x)), a),
+        };
+        let Some(v) = v else { return Ok(None) };
+        if self.has_nulls && arr.is_null(i) {
+            return Ok(None);
+        }
+        match self.scale {
+            Scale::Mul(f) => v.checked_mul(f).map(Some).ok_or_else(|| format!("{v} {}", self.unit)),
+            Scale::Div(d) => Ok(Some(v.div_euclid(d))),
+        }
+    }
+}
+
+fn epoch_scale(unit: EpochUnit) -> Scale {
+    match unit {
+        EpochUnit::Seconds => Scale::Mul(1_000_000),
+        EpochUnit::Milliseconds => Scale::Mul(1_000),
+        EpochUnit::Microseconds => Scale::Mul(1),
+        EpochUnit::Nanoseconds => Scale::Div(1_000),
+    }
+}
+
+/// A numeric column read as f64.
+pub(super) enum ValueCol<'a> {
+    F64(&'a PrimitiveArray<Float64Type>),
+    F32(&'a PrimitiveArray<Float32Type>),
+    I64(&'a PrimitiveArray<Int64Type>),
+    I32(&'a PrimitiveArray<Int32Type>),
+    I16(&'a PrimitiveArray<Int16Type>),
+    I8(&'a PrimitiveArray<Int8Type>),
+    U64(&'a PrimitiveArray<UInt64Type>),
+    U32(&'a PrimitiveArray<UInt32Type>),
+    U16(&'a PrimitiveArray<UInt16Type>),
+    U8(&'a PrimitiveArray<UInt8Type>),
+    Bool(&'a BooleanArray),
+}
+
+impl<'a> ValueCol<'a> {
+    pub(super) fn new(a: &'a dyn Array) -> Option<Self> {
+        Some(match a.data_type() {
+            DataType::Float64 => ValueCol::F64(a.as_primitive_opt()?),
+            DataType::Float32 => ValueCol::F32(a.as_primitive_opt()?),
+            DataType::Int64 => ValueCol::I64(a.as_primitive_opt()?),
+            DataType::Int32 => ValueCol::I32(a.as_primitive_opt()?),
+            DataType::Int16 => ValueCol::I16(a.as_primitive_opt()?),
+            DataType::Int8 => ValueCol::I8(a.as_primitive_opt()?),
+            DataType::UInt64 => ValueCol::U64(a.as_primitive_opt()?),
+            DataType::UInt32 => ValueCol::U32(a.as_primitive_opt()?),
+            DataType::UInt16 => ValueCol::U16(a.as_primitive_opt()?),
+            DataType::UInt8 => ValueCol::U8(a.as_primitive_opt()?),
+            DataType::Boolean => ValueCol::Bool(a.as_boolean_opt()?),
+            _ => return None,
+        })
+    }
+
+    /// The value as f64; `None` for null. Integers beyond 2^53 lose their
+    /// last digits, as any f64 would.
+    pub(super) fn get(&self, i: usize) -> Option<f64> {
+        macro_rules! prim {
+            ($a:expr) => {
+                (i < $a.len() && !$a.is_null(i)).then(|| $a.value(i) as f64)
+            };
+        }
+        match self {
+            ValueCol::F64(a) => prim!(a),
+            ValueCol::F32(a) => (i < a.len() && !a.is_null(i)).then(|| f64::from(a.value(i))),
+            ValueCol::I64(a) => prim!(a),
+            ValueCol::I32(a) => prim!(a),
+            ValueCol::I16(a) => prim!(a),
+            ValueCol::I8(a) => prim!(a),
+            ValueCol::U64(a) => prim!(a),
+            ValueCol::U32(a) => prim!(a),
+            ValueCol::U16(a) => prim!(a),
+            ValueCol::U8(a) => prim!(a),
+            ValueCol::Bool(a) => (i < a.len() && !a.is_null(i)).then(|| if a.value(i) { 1.0 } else { 0.0 }),
+        }
+    }
+}
+
+/// A quality column: integer codes or text.
+pub(super) enum QualCol<'a> {
+    Int(IntCol<'a>),
+    Text(TextCol<'a>),
+}
+
+impl<'a> QualCol<'a> {
+    pub(super) fn new(a: &'a dyn Array) -> Option<Self> {
+        if is_integer(a.data_type()) {
+            return IntCol::new(a).map(QualCol::Int);
+        }
+        TextCol::new(a).map(QualCol::Text)
+    }
+
+    pub(super) fn get(&self, i: usize) -> RawQuality<'a> {
+        match self {
+            QualCol::Int(c) => c.get(i).map_or(RawQuality::Null, RawQuality::Int),
+            QualCol::Text(c) => c.get(i).map_or(RawQuality::Null, RawQuality::Text),
+        }
+    }
+}
+
+/// An integer column read as i64 (u64 beyond i64::MAX saturates; such a
+/// code is out of range for every coding anyway).
+pub(super) enum IntCol<'a> {
+    I64(&'a PrimitiveArray<Int64Type>),
+    I32(&'a PrimitiveArray<Int32Type>),
+    I16(&'a PrimitiveArray<Int16Type>),
+    I8(&'a PrimitiveArray<Int8Type>),
+    U64(&'a PrimitiveArray<UInt64Type>),
+    U32(&'a PrimitiveArray<UInt32Type>),
+    U16(&'a PrimitiveArray<UInt16Type>),
+    U8(&'a PrimitiveArray<UInt8Type>),
+}
+
+impl<'a> IntCol<'a> {
+    pub(super) fn new(a: &'a dyn Array) -> Option<Self> {
+        Some(match a.data_type() {
+            DataType::Int64 => IntCol::I64(a.as_primitive_opt()?),
+            DataType::Int32 => IntCol::I32(a.as_primitive_opt()?),
+            DataType::Int16 => IntCol::I16(a.as_primitive_opt()?),
+            DataType::Int8 => IntCol::I8(a.as_primitive_opt()?),
+            DataType::UInt64 => IntCol::U64(a.as_primitive_opt()?),
+            DataType::UInt32 => IntCol::U32(a.as_primitive_opt()?),
+            DataType::UInt16 => IntCol::U16(a.as_primitive_opt()?),
+            DataType::UInt8 => IntCol::U8(a.as_primitive_opt()?),
+            _ => return None,
+        })
+    }
+
+    pub(super) fn get(&self, i: usize) -> Option<i64> {
+        macro_rules! prim {
+            ($a:expr) => {
+                (i < $a.len() && !$a.is_null(i)).then(|| i64::from($a.value(i)))
+            };
+        }
+        match self {
+            IntCol::I64(a) => prim!(a),
+            IntCol::I32(a) => prim!(a),
+            IntCol::I16(a) => prim!(a),
+            IntCol::I8(a) => prim!(a),
+            IntCol::U64(a) => (i < a.len() && !a.is_null(i)).then(|| i64::try_from(a.value(i)).unwrap_or(i64::MAX)),
+            IntCol::U32(a) => prim!(a),
+            IntCol::U16(a) => prim!(a),
+            IntCol::U8(a) => prim!(a),
+        }
+    }
+
+    /// A code no column of this type can exceed, when the type bounds it
+    /// to the OPC byte range (so `auto` need not scan the column).
+    pub(super) fn type_max(t: &DataType) -> Option<i64> {
+        match t {
+            DataType::UInt8 => Some(255),
+            DataType::Int8 => Some(127),
+            _ => None,
+        }
+    }
+}

@@ -1,0 +1,237 @@
+//! Tests of the `cleaned.parquet` writer: schema, metadata, encodings and
+//! round trips through the plain Parquet reader.
+
+use std::path::Path;
+
+use arrow_array::cast::AsArray;
+use arrow_array::types::{Float64Type, Int32Type, TimestampMicrosecondType};
+use arrow_array::{Array, RecordBatch};
+use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
+use parquet::basic::Encoding;
+use parquet::file::reader::{FileReader, SerializedFileReader};
+use proptest::prelude::*;
+
+use super::*;
+use crate::series::{Quality, ReadCounts, Sampling, TagSeries};
+
+/// One row as read back: tag, ts, raw, value, std, status, fault.
+/// (`raw` as bits, so that a NaN reading compares equal to itself.)
+type Row = (String, i64, Option<u64>, Option<f64>, Option<f64>, String, Option<String>);
+
+fn read_back(path: &Path) -> (SchemaRef, Vec<Row>, Meta) {
+    let file = std::fs::File::open(path).unwrap();
+    let builder = ParquetRecordBatchReaderBuilder::try_new(file).unwrap();
+    let schema = builder.schema().clone();
+    let kv: Meta = builder
+        .metadata()
+        .file_metadata()
+        .key_value_metadata()
+        .map(|v| v.iter().map(|k| (k.key.clone(), k.value.clone().unwrap_or_default())).collect())
+        .unwrap_or_default();
+    let mut rows = Vec::new();
+    for batch in builder.build().unwrap() {
+        rows.extend(rows_of(&batch.unwrap()));
+    }
+    (schema, rows, kv)
+}
+
+type Meta = std::collections::BTreeMap<String, String>;
+
+fn rows_of(b: &RecordBatch) -> Vec<Row> {
+    let text = |c: usize, i: usize| -> Option<String> {
+        let d = b.column(c).as_dictionary::<Int32Type>();
+        if d.is_null(i) {
+            return None;
+        }
+        let k = d.keys().value(i) as usize;
+        Some(d.values().as_string::<i32>().value(k).to_string())
+    };
+    let float = |c: usize, i: usize| {
+        let a = b.column(c).as_primitive::<Float64Type>();
+        (!a.is_null(i)).then(|| a.value(i))
+    };
+    let ts = b.column(1).as_primitive::<TimestampMicrosecondType>();
+    (0..b.num_rows())
+        .map(|i| {
+            (
+                text(0, i).unwrap(),
+                ts.value(i),
+                float(2, i).map(f64::to_bits),
+                float(3, i),
+                float(4, i),
+                text(5, i).unwrap(),
+                text(6, i),
+            )
+        })
+        .collect()
+}
+
+fn expected_rows(tables: &[TagTable]) -> Vec<Row> {
+    let opt = |v: f64| (!v.is_nan()).then_some(v);
+    tables
+        .iter()
+        .flat_map(|t| {
+            (0..t.len()).map(move |i| {
+                (
+                    t.tag.clone(),
+                    t.ts_us[i],
+                    if t.status[i] == Status::Filled { None } else { Some(t.raw[i].to_bits()) },
+                    opt(t.value[i]),
+                    opt(t.std[i]),
+                    t.status[i].as_str().to_string(),
+                    t.fault[i].map(|f| f.as_str().to_string()),
+                )
+            })
+        })
+        .collect()
+}
+
+fn table(tag: &str, n: usize) -> TagTable {
+    let s = TagSeries {
+        tag: tag.into(),
+        ts_us: (0..n as i64).map(|i| 1_772_344_800_000_000 + i * 5_000_000).collect(),
+        values: (0..n).map(|i| i as f64 * 0.5).collect(),
+        quality: vec![Quality::Good; n],
+        counts: ReadCounts::default(),
+    };
+    TagTable::from_series(&s, 5_000_000, Sampling::Regular)
+}
+
+#[test]
+fn round_trip_schema_metadata_and_encodings() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("cleaned.parquet");
+    let mut a = table("FT-101.PV", 6);
+    a.insert_rows(&[a.ts_us[2] + 1], 0);
+    a.value[3] = 1.25;
+    a.std[3] = 0.5;
+    a.decide(1, Status::Replaced, Some(Fault::Spike), 1, 9.0, 5.0);
+    a.value[1] = 0.75;
+    a.decide(4, Status::Rejected, Some(Fault::Stuck), 1, 9.0, 5.0);
+    a.value[4] = f64::NAN;
+    a.decide(5, Status::Ok, Some(Fault::Drift), 2, 1.0, 0.5);
+    a.raw[6] = f64::NAN;
+    let b = table("TT-204.PV", 3);
+    let empty = table("XX-0", 0);
+    let mut w = CleanedWriter::create(&path, "run-7", Compression::Zstd).unwrap();
+    assert!(!path.exists(), "written under a partial name until closed");
+    for t in [&a, &b, &empty] {
+        w.write_tag(t).unwrap();
+    }
+    assert_eq!(w.close().unwrap(), 10);
+
+    let (schema, rows, kv) = read_back(&path);
+    let shape = |s: &SchemaRef| {
+        s.fields().iter().map(|f| (f.name().clone(), f.data_type().clone(), f.is_nullable())).collect::<Vec<_>>()
+    };
+    assert_eq!(shape(&schema), shape(&cleaned_schema()));
+    assert_eq!(rows, expected_rows(&[a, b]));
+    assert_eq!(rows[3].2, None, "filled row: raw is null");
+    assert!(rows[6].2.is_some_and(|b| f64::from_bits(b).is_nan()), "a NaN reading stays NaN in raw");
+    assert_eq!(kv.get(META_RUN_ID).map(String::as_str), Some("run-7"));
+    assert_eq!(kv.get(META_VERSION).map(String::as_str), Some(env!("CARGO_PKG_VERSION")));
+
+    // The design's encodings: delta for ts, byte-stream-split for the floats.
+    let r = SerializedFileReader::new(std::fs::File::open(&path).unwrap()).unwrap();
+    let rg = r.metadata().row_group(0);
+    for c in rg.columns() {
+        let name = c.column_path().string();
+        let enc = c.encodings().collect::<Vec<_>>();
+        match name.as_str() {
+            "ts" => assert!(enc.contains(&Encoding::DELTA_BINARY_PACKED), "{name}: {enc:?}"),
+            "raw" | "value" | "std" => assert!(enc.contains(&Encoding::BYTE_STREAM_SPLIT), "{name}: {enc:?}"),
+            _ => {}
+        }
+        if ["ts", "raw", "value", "std"].contains(&name.as_str()) {
+            assert!(!enc.contains(&Encoding::RLE_DICTIONARY), "{name}: {enc:?}");
+        }
+    }
+}
+
+#[test]
+fn contract_breaches_are_errors_and_leave_no_file() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("cleaned.parquet");
+    let mut w = CleanedWriter::create(&path, "r", Compression::Snappy).unwrap();
+    w.write_tag(&table("B", 2)).unwrap();
+    let e = w.write_tag(&table("A", 2)).unwrap_err().to_string();
+    assert!(e.contains("tag `A`: tags must be written in sorted order, each once; `A` comes after `B`"), "{e}");
+    let e = w.write_tag(&table("B", 2)).unwrap_err().to_string();
+    assert!(e.contains("comes after `B`"), "{e}");
+    let mut t = table("C", 3);
+    t.ts_us[2] = t.ts_us[1];
+    let e = w.write_tag(&t).unwrap_err().to_string();
+    assert!(e.contains("tag `C`: times do not increase at row 2"), "{e}");
+    let mut t = table("D", 3);
+    t.std.pop();
+    assert!(w.write_tag(&t).unwrap_err().to_string().contains("column lengths differ"));
+    drop(w);
+    assert_eq!(std::fs::read_dir(dir.path()).unwrap().count(), 0, "dropped unclosed: nothing left");
+}
+
+#[test]
+fn many_rows_span_row_groups() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("big.parquet");
+    let mut w = CleanedWriter::create(&path, "r", Compression::Snappy).unwrap();
+    let n = ROW_GROUP_ROWS / 4 + 7;
+    for k in 0..5 {
+        w.write_tag(&table(&format!("T{k}"), n)).unwrap();
+    }
+    assert_eq!(w.close().unwrap(), 5 * n as u64);
+    let r = SerializedFileReader::new(std::fs::File::open(&path).unwrap()).unwrap();
+    assert_eq!(r.metadata().num_row_groups(), 2);
+    assert_eq!(r.metadata().row_group(0).num_rows() as usize, ROW_GROUP_ROWS);
+}
+
+fn arb_table(tag: String) -> impl Strategy<Value = TagTable> {
+    let row = (
+        1i64..1_000_000_000,
+        prop_oneof![Just(f64::NAN), -1e6f64..1e6],
+        prop_oneof![Just(f64::NAN), -1e6f64..1e6],
+        prop_oneof![Just(f64::NAN), 0.0f64..10.0],
+        0usize..4,
+        prop::option::of(0usize..7),
+    );
+    prop::collection::vec(row, 0..40).prop_map(move |rows| {
+        let mut ts = 0i64;
+        let mut t = table(&tag, rows.len());
+        for (i, r) in rows.into_iter().enumerate() {
+            ts += r.0;
+            t.ts_us[i] = ts;
+            t.raw[i] = r.1;
+            t.value[i] = r.2;
+            t.std[i] = r.3;
+            t.status[i] = Status::ALL[r.4];
+            t.fault[i] = r.5.map(|f| Fault::ALL[f]);
+        }
+        t
+    })
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(48))]
+
+    /// Any tables written come back column by column, nulls included.
+    #[test]
+    fn parquet_round_trip_of_random_tables(
+        tables in prop::collection::vec(0u8..26, 0..6).prop_flat_map(|mut letters| {
+            letters.sort_unstable();
+            letters.dedup();
+            letters.into_iter().map(|l| arb_table(format!("{}T-{l:02}.PV", (b'A' + l) as char))).collect::<Vec<_>>()
+        }),
+        zstd in any::<bool>(),
+    ) {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("c.parquet");
+        let mut w = CleanedWriter::create(&path, "p", if zstd { Compression::Zstd } else { Compression::Snappy }).unwrap();
+        for t in &tables {
+            w.write_tag(t).unwrap();
+        }
+        let n = w.close().unwrap();
+        let want = expected_rows(&tables);
+        prop_assert_eq!(n as usize, want.len());
+        let (_, rows, _) = read_back(&path);
+        prop_assert_eq!(rows, want);
+    }
+}
