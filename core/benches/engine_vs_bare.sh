@@ -47,7 +47,7 @@ for tags in "${tag_counts[@]}"; do
     file="$dir/long_${tags}.parquet"
     "$bin/examples/gen_long" "$tags" "$hours" "$file" > /dev/null
     rows=$((tags * hours * 3600))
-    read -r bare_kb bare_s < <(measure "$bin/examples/bare_copy" "$file" "$dir/copy.parquet" zstd --reps 1)
+    read -r bare_kb bare_s < <(measure "$bin/examples/bare_copy" "$file" "$dir/copy.parquet" zstd --reps 1 --only bare)
     read -r eng_kb eng_s < <(measure "$bin/tagwright" run --pipeline "$dir/bench.yaml" --input "$file" --out "$dir/run_$tags" --threads 1)
     ratio=$(awk -v a="$eng_s" -v b="$bare_s" 'BEGIN { printf "%.2f", a / b }')
     printf '%-6s %-12s %-10s %-10s %-8s %-14s %-14s\n' "$tags" "$rows" "$bare_s" "$eng_s" "$ratio" \

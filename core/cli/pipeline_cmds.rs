@@ -181,7 +181,13 @@ fn print_summary(spec: &PipelineSpec, opts: &RunOptions, o: &RunOutcome) {
 pub fn check(args: &CheckArgs) -> Result<(), Failure> {
     let registry = registry();
     let spec = load(&args.pipeline, &registry)?;
-    println!("{}: valid ({} rules, {} shifts, time zone {})", spec.path.display(), spec.rules.len(), spec.shifts.len(), spec.site.timezone);
+    println!(
+        "{}: valid ({} rules, {} shifts, time zone {})",
+        spec.path.display(),
+        spec.rules.len(),
+        spec.shifts.len(),
+        spec.site.timezone
+    );
     if args.input.is_empty() {
         return Ok(());
     }

@@ -8,13 +8,16 @@
 //! In the same run it times tagwright's own input/output path on the same
 //! file: `InputSet::open` (first pass and hashing), `read_tags` in chunks of
 //! 16 tags, each tag's table written by `CleanedWriter` (no pipeline steps),
-//! and prints the ratio to the baseline. Both run on one thread; each is
-//! repeated `--reps` times (default 3) and the fastest run is reported.
+//! and prints the ratio to the baseline. The baseline runs on one thread;
+//! `CleanedWriter::create` encodes on two background threads. Each is
+//! repeated `--reps` times (default 3) and the fastest run is reported;
+//! `--only bare` or `--only io` runs one of them (use `--only bare` when
+//! timing the whole process as the baseline).
 //! `TAGWRIGHT_BREAKDOWN=1` prints the phases of each tagwright run.
 //!
 //! ```text
 //! cargo run --release -p tagwright --example gen_long -- 200 1 /tmp/long.parquet
-//! cargo run --release -p tagwright --example bare_copy -- /tmp/long.parquet /tmp/copy.parquet [zstd|snappy] [--reps N]
+//! cargo run --release -p tagwright --example bare_copy -- /tmp/long.parquet /tmp/copy.parquet [zstd|snappy] [--reps N] [--only bare|io]
 //! ```
 
 use std::path::{Path, PathBuf};
@@ -44,23 +47,34 @@ fn run() -> Result<(), Error> {
         reps = args.get(i + 1).and_then(|r| r.parse().ok()).ok_or("--reps needs a whole number")?;
         args.drain(i..i + 2);
     }
+    let mut only = None;
+    if let Some(i) = args.iter().position(|a| a == "--only") {
+        only = Some(args.get(i + 1).cloned().ok_or("--only needs `bare` or `io`")?);
+        args.drain(i..i + 2);
+    }
+    let run_bare = only.as_deref() != Some("io");
+    let run_io = only.as_deref() != Some("bare");
     let (input, output, compression) = match args.as_slice() {
         [i, o] => (i, o, Compression::Zstd),
         [i, o, c] if c == "zstd" => (i, o, Compression::Zstd),
         [i, o, c] if c == "snappy" => (i, o, Compression::Snappy),
-        _ => return Err("usage: bare_copy IN.parquet OUT.parquet [zstd|snappy] [--reps N]".into()),
+        _ => return Err("usage: bare_copy IN.parquet OUT.parquet [zstd|snappy] [--reps N] [--only bare|io]".into()),
     };
     let (input, output) = (PathBuf::from(input), PathBuf::from(output));
     let mut bare = f64::INFINITY;
     let mut ours = f64::INFINITY;
     let mut rows = (0, 0);
     for _ in 0..reps.max(1) {
-        let t = Instant::now();
-        rows.0 = bare_copy(&input, &output, compression)?;
-        bare = bare.min(t.elapsed().as_secs_f64());
-        let t = Instant::now();
-        rows.1 = io_path(&input, &output, compression)?;
-        ours = ours.min(t.elapsed().as_secs_f64());
+        if run_bare {
+            let t = Instant::now();
+            rows.0 = bare_copy(&input, &output, compression)?;
+            bare = bare.min(t.elapsed().as_secs_f64());
+        }
+        if run_io {
+            let t = Instant::now();
+            rows.1 = io_path(&input, &output, compression)?;
+            ours = ours.min(t.elapsed().as_secs_f64());
+        }
     }
     println!("bare read+write: {} rows in {bare:.3} s ({:.1} M rows/s)", rows.0, rows.0 as f64 / bare / 1e6);
     println!("tagwright io:    {} rows in {ours:.3} s ({:.1} M rows/s)", rows.1, rows.1 as f64 / ours / 1e6);

@@ -46,6 +46,21 @@ fn smoothing_job<'a>(
     })
 }
 
+/// A maximum-likelihood fit that must converge; `SSM_TIMING_VERBOSE` prints the result.
+fn fitting_job<'a>(spec: ModelSpec, obs: Observations<'a>, path: Path) -> Box<dyn Fn() -> Result<(), String> + 'a> {
+    Box::new(move || {
+        let r = fit(&spec, &obs, &FitOptions { path, ..Default::default() }).map_err(|e| e.to_string())?;
+        if !r.converged {
+            return Err(format!("fit did not converge: {r:?}"));
+        }
+        if std::env::var_os("SSM_TIMING_VERBOSE").is_some() {
+            eprintln!("{r:?}");
+        }
+        std::hint::black_box(r);
+        Ok(())
+    })
+}
+
 fn run() -> Result<(), String> {
     let mut args: Vec<String> = std::env::args().skip(1).collect();
     let mut path = None;
@@ -83,17 +98,7 @@ fn run() -> Result<(), String> {
         "ll-fit" => {
             let spec: ModelSpec = "local-level".parse().map_err(|e: tagwright::ssm::SsmError| e.to_string())?;
             let path = path.unwrap_or(Path::Auto);
-            Box::new(move || {
-                let r = fit(&spec, &obs, &FitOptions { path, ..Default::default() }).map_err(|e| e.to_string())?;
-                if !r.converged {
-                    return Err(format!("fit did not converge: {r:?}"));
-                }
-                if std::env::var_os("SSM_TIMING_VERBOSE").is_some() {
-                    eprintln!("{r:?}");
-                }
-                std::hint::black_box(r);
-                Ok(())
-            })
+            fitting_job(spec, obs, path)
         }
         "arma-smooth" | "arma-fit" => {
             let v = nums(2)?;
@@ -105,17 +110,7 @@ fn run() -> Result<(), String> {
                 let model = spec.build(&v[2..]).map_err(|e| e.to_string())?;
                 smoothing_job(model, obs, path)
             } else {
-                Box::new(move || {
-                    let r = fit(&spec, &obs, &FitOptions { path, ..Default::default() }).map_err(|e| e.to_string())?;
-                    if !r.converged {
-                        return Err(format!("fit did not converge: {r:?}"));
-                    }
-                    if std::env::var_os("SSM_TIMING_VERBOSE").is_some() {
-                        eprintln!("{r:?}");
-                    }
-                    std::hint::black_box(r);
-                    Ok(())
-                })
+                fitting_job(spec, obs, path)
             }
         }
         _ => return Err(format!("unknown task {task}")),

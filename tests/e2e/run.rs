@@ -89,7 +89,8 @@ fn read_cleaned(path: &Path) -> Cleaned {
         .key_value_metadata()
         .map(|kv| kv.iter().map(|k| (k.key.clone(), k.value.clone().unwrap_or_default())).collect())
         .unwrap_or_default();
-    let schema = builder.schema().fields().iter().map(|f| (f.name().clone(), f.data_type().clone(), f.is_nullable())).collect();
+    let schema =
+        builder.schema().fields().iter().map(|f| (f.name().clone(), f.data_type().clone(), f.is_nullable())).collect();
     let mut c = Cleaned {
         tag: vec![],
         ts: vec![],
@@ -155,7 +156,8 @@ fn run_writes_the_contract_and_every_change_has_one_event() {
     assert!(!c.tag.iter().any(|t| t == "XX-999"));
     assert_eq!(c.tag.len(), 4 * 60);
 
-    let row = |tag: &str, i: i64| (0..c.tag.len()).find(|&r| c.tag[r] == tag && c.ts[r] == T0_US + i * 5_000_000).unwrap();
+    let row =
+        |tag: &str, i: i64| (0..c.tag.len()).find(|&r| c.tag[r] == tag && c.ts[r] == T0_US + i * 5_000_000).unwrap();
     let r1 = row("FT-101.PV", 10);
     assert_eq!((c.status[r1].as_str(), c.fault[r1].as_deref(), c.value[r1]), ("rejected", Some("range"), None));
     assert_eq!(c.raw[r1], Some(120.5));
@@ -187,7 +189,11 @@ fn run_writes_the_contract_and_every_change_has_one_event() {
         let ts = rfc3339(c.ts[r]);
         let n = events
             .iter()
-            .filter(|e| e["tag"] == c.tag[r].as_str() && e["from"].as_str().unwrap() <= ts.as_str() && ts.as_str() <= e["to"].as_str().unwrap())
+            .filter(|e| {
+                e["tag"] == c.tag[r].as_str()
+                    && e["from"].as_str().unwrap() <= ts.as_str()
+                    && ts.as_str() <= e["to"].as_str().unwrap()
+            })
             .count();
         assert_eq!(n, usize::from(changed), "row {r} ({} {ts}) is in {n} events", c.tag[r]);
     }
@@ -195,7 +201,10 @@ fn run_writes_the_contract_and_every_change_has_one_event() {
     let changed_rows = (0..c.tag.len()).filter(|&r| c.status[r] != "ok" || c.fault[r].is_some()).count() as u64;
     assert_eq!(rows_in_events, changed_rows);
     let range_event = events.iter().find(|e| e["tag"] == "FT-101.PV" && e["fault"] == "range").unwrap();
-    assert_eq!((range_event["rows"].as_u64(), range_event["statistic"].as_f64(), range_event["threshold"].as_f64()), (Some(2), Some(130.0), Some(100.0)));
+    assert_eq!(
+        (range_event["rows"].as_u64(), range_event["statistic"].as_f64(), range_event["threshold"].as_f64()),
+        (Some(2), Some(130.0), Some(100.0))
+    );
 }
 
 #[test]

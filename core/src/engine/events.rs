@@ -56,7 +56,8 @@ pub fn events(t: &TagTable, step_names: &[String]) -> Vec<Event> {
             i += 1;
         }
         let (status, fault, step) = k;
-        let threshold = best.map(|b| t.threshold[b]).or_else(|| (start..i).map(|r| t.threshold[r]).find(|v| v.is_finite()));
+        let threshold =
+            best.map(|b| t.threshold[b]).or_else(|| (start..i).map(|r| t.threshold[r]).find(|v| v.is_finite()));
         out.push(Event {
             tag: t.tag.clone(),
             from_us: t.ts_us[start],

@@ -94,6 +94,9 @@ pub struct RunOutcome {
     pub streaming: bool,
 }
 
+/// One tag's carried state: a JSON value per step name.
+type StepState = BTreeMap<String, serde_json::Value>;
+
 /// A tag (or group of tags) and the chain it runs.
 struct Unit {
     tags: Vec<(String, ResolvedTag)>,
@@ -121,11 +124,9 @@ pub fn run(
 ) -> Result<RunOutcome, EngineError> {
     let started = Instant::now();
     let started_at = chrono::Utc::now();
-    let input = InputSet::open(
-        &opts.inputs,
-        InputOptions { spec: &spec.input, tz: spec.site.timezone, window: opts.window },
-    )
-    .map_err(EngineError::Input)?;
+    let input =
+        InputSet::open(&opts.inputs, InputOptions { spec: &spec.input, tz: spec.site.timezone, window: opts.window })
+            .map_err(EngineError::Input)?;
 
     // Selection and work units, in sorted tag order.
     let mut outcome = RunOutcome { streaming: input.is_streaming(), ..Default::default() };
@@ -145,9 +146,11 @@ pub fn run(
         }
         let mut chain = Vec::with_capacity(resolved.steps.len());
         for s in &resolved.steps {
-            chain.push(registry.make(&s.name, &s.params).map_err(|e| {
-                EngineError::Config(format!("{}:{}: {e}", spec.path.display(), s.line))
-            })?);
+            chain.push(
+                registry
+                    .make(&s.name, &s.params)
+                    .map_err(|e| EngineError::Config(format!("{}:{}: {e}", spec.path.display(), s.line)))?,
+            );
         }
         let names = resolved.steps.iter().map(|s| s.name.clone()).collect();
         units.push(Unit { tags: vec![(tag.clone(), resolved)], chain, names });
@@ -164,14 +167,19 @@ pub fn run(
     let mut state_out: BTreeMap<String, BTreeMap<String, serde_json::Value>> = BTreeMap::new();
 
     let out = OutputDir::create(&opts.out_dir).map_err(EngineError::Output)?;
-    let mut writer =
-        CleanedWriter::create(&out.path("cleaned.parquet"), &run_id, spec.output.compression).map_err(EngineError::Output)?;
-    let mut prov = provenance::Body::new();
-
     let pool = rayon::ThreadPoolBuilder::new()
         .num_threads(opts.threads.unwrap_or(0))
         .build()
         .map_err(|e| EngineError::Threads(e.to_string()))?;
+    // The writer encodes on a background thread unless the run is held to one.
+    let mut writer = CleanedWriter::create_with_threads(
+        &out.path("cleaned.parquet"),
+        &run_id,
+        spec.output.compression,
+        if pool.current_num_threads() == 1 { 1 } else { 2 },
+    )
+    .map_err(EngineError::Output)?;
+    let mut prov = provenance::Body::new();
     let chunk = opts.chunk_units.unwrap_or_else(|| 8 * pool.current_num_threads()).max(1);
 
     // Results wait here until every tag before them in sorted order is written.
@@ -182,7 +190,7 @@ pub fn run(
         let names: Vec<String> = batch.iter().flat_map(|u| u.tags.iter().map(|(t, _)| t.clone())).collect();
         let series = input.read_tags(&names).map_err(EngineError::Input)?;
         let mut by_tag: BTreeMap<String, TagSeries> = series.into_iter().map(|s| (s.tag.clone(), s)).collect();
-        let jobs: Vec<(&Unit, Vec<TagSeries>, Vec<BTreeMap<String, serde_json::Value>>)> = batch
+        let jobs: Vec<(&Unit, Vec<TagSeries>, Vec<StepState>)> = batch
             .iter()
             .map(|u| {
                 let s: Vec<TagSeries> = u.tags.iter().filter_map(|(t, _)| by_tag.remove(t)).collect();
@@ -328,8 +336,8 @@ fn write_result(
             *faults.entry(f.as_str()).or_default() += 1;
         }
     }
-    for k in 0..4 {
-        outcome.rows_by_status[k] += by_status[k];
+    for (total, n) in outcome.rows_by_status.iter_mut().zip(by_status) {
+        *total += n;
     }
     for (f, c) in &faults {
         *outcome.faults.entry(f).or_default() += c;

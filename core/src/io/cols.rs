@@ -208,6 +208,28 @@ impl<'a> TimeCol<'a> {
     }
 }
 
+impl TimeCol<'_> {
+    /// Appends rows `start..start + len` (as [`TimeCol::micros`]); `Err(k)`
+    /// names the first row that is null or out of range (the caller asks
+    /// `micros(k)` why). Columns without nulls in microseconds are copied whole.
+    pub(super) fn extend_into(&self, out: &mut Vec<i64>, start: usize, len: usize) -> Result<(), usize> {
+        if let (Ints::I64(v, _), Scale::Mul(1), false) = (&self.values, self.scale, self.has_nulls) {
+            if let Some(slice) = v.get(start..start + len) {
+                out.extend_from_slice(slice);
+                return Ok(());
+            }
+        }
+        out.reserve(len);
+        for k in start..start + len {
+            match self.micros(k) {
+                Ok(Some(t)) => out.push(t),
+                _ => return Err(k),
+            }
+        }
+        Ok(())
+    }
+}
+
 fn epoch_scale(unit: EpochUnit) -> Scale {
     match unit {
         EpochUnit::Seconds => Scale::Mul(1_000_000),
@@ -271,6 +293,22 @@ impl<'a> ValueCol<'a> {
             ValueCol::U8(a) => prim!(a),
             ValueCol::Bool(a) => (i < a.len() && !a.is_null(i)).then(|| if a.value(i) { 1.0 } else { 0.0 }),
         }
+    }
+}
+
+impl ValueCol<'_> {
+    /// Appends rows `start..start + len` as f64, NaN for null. A Float64
+    /// column without nulls is copied whole.
+    pub(super) fn extend_into(&self, out: &mut Vec<f64>, start: usize, len: usize) {
+        if let ValueCol::F64(a) = self {
+            if a.null_count() == 0 {
+                if let Some(slice) = a.values().get(start..start + len) {
+                    out.extend_from_slice(slice);
+                    return;
+                }
+            }
+        }
+        out.extend((start..start + len).map(|k| self.get(k).unwrap_or(f64::NAN)));
     }
 }
 

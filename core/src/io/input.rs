@@ -153,12 +153,7 @@ impl Chunk {
     }
 
     pub(super) fn push(&mut self, ts: i64, local: bool, value: f64, quality: Quality, row: u64) {
-        if local && self.local.len() < self.ts.len() {
-            self.local.resize(self.ts.len(), false);
-        }
-        if local || !self.local.is_empty() {
-            self.local.push(local);
-        }
+        self.note_local(local, 1);
         self.ts.push(ts);
         self.value.push(value);
         self.quality.push(quality);
@@ -171,6 +166,31 @@ impl Chunk {
 
     fn is_local(&self, i: usize) -> bool {
         self.local.get(i).copied().unwrap_or(false)
+    }
+
+    /// Records that `n` rows about to be added have local times (or not).
+    pub(super) fn note_local(&mut self, local: bool, n: usize) {
+        if local && self.local.len() < self.ts.len() {
+            self.local.resize(self.ts.len(), false);
+        }
+        if local || !self.local.is_empty() {
+            self.local.extend(std::iter::repeat_n(local, n));
+        }
+    }
+
+    /// The rows whose (UTC) time passes `keep`; local flags are dropped
+    /// (called after conversion).
+    fn filter(self, keep: impl Fn(i64) -> bool) -> Chunk {
+        let mut out = Chunk::with_capacity(self.len());
+        for i in 0..self.len() {
+            if keep(self.ts[i]) {
+                out.ts.push(self.ts[i]);
+                out.value.push(self.value[i]);
+                out.quality.push(self.quality[i]);
+                out.row.push(self.row[i]);
+            }
+        }
+        out
     }
 }
 
@@ -450,49 +470,54 @@ impl InputSet {
 
     /// Applies the reading rules to one tag's rows (chunks in file order).
     fn finish_tag(&self, tag: String, chunks: Vec<(usize, Chunk)>) -> Result<TagSeries> {
-        let n: usize = chunks.iter().map(|(_, c)| c.len()).sum();
-        let mut ts = Vec::with_capacity(n);
-        let mut values = Vec::with_capacity(n);
-        let mut quality = Vec::with_capacity(n);
-        // (file, row) of each kept row, for duplicate errors.
-        let mut origin: Vec<(u32, u64)> = Vec::with_capacity(n);
+        // (file, row) of each kept row: only the `error` duplicate rule names them.
+        let want_origin = self.spec.duplicates == DuplicateRule::Error;
+        let mut origin: Vec<(u32, u64)> = Vec::new();
+        let mut ts: Vec<i64> = Vec::new();
+        let mut values: Vec<f64> = Vec::new();
+        let mut quality: Vec<Quality> = Vec::new();
         let mut counts = ReadCounts::default();
         let mut resolver = LocalResolver::new(self.tz);
         let mut fold = FoldState::default();
-        for (f, c) in &chunks {
-            let mut last: Option<i64> = None;
-            for i in 0..c.len() {
-                let t = if c.is_local(i) {
-                    local_to_utc(&mut resolver, &mut fold, c.ts[i]).map_err(|reason| IoError::BadTime {
-                        path: self.files[*f].path.clone(),
-                        row: c.row[i],
-                        column: self.spec.columns.time.clone(),
-                        text: format_local(c.ts[i]),
-                        reason,
-                    })?
-                } else {
-                    c.ts[i]
-                };
-                if let Some((from, to)) = self.window {
-                    if t < from || t >= to {
-                        continue;
+        for (f, mut c) in chunks {
+            // Local times to UTC, in file order (the daylight-saving rule follows the rows).
+            if !c.local.is_empty() {
+                for i in 0..c.len() {
+                    if c.is_local(i) {
+                        c.ts[i] =
+                            local_to_utc(&mut resolver, &mut fold, c.ts[i]).map_err(|reason| IoError::BadTime {
+                                path: self.files[f].path.clone(),
+                                row: c.row[i],
+                                column: self.spec.columns.time.clone(),
+                                text: format_local(c.ts[i]),
+                                reason,
+                            })?;
                     }
                 }
-                counts.rows += 1;
-                if last.is_some_and(|l| t < l) {
-                    counts.out_of_order += 1;
+            }
+            if let Some((from, to)) = self.window {
+                if c.ts.iter().any(|&t| t < from || t >= to) {
+                    c = c.filter(|t| t >= from && t < to);
                 }
-                last = Some(t);
-                let (v, q) = if c.value[i].is_finite() {
-                    (c.value[i], c.quality[i])
-                } else {
+            }
+            counts.rows += c.len();
+            counts.out_of_order += c.ts.windows(2).filter(|w| w[1] < w[0]).count();
+            for (v, q) in c.value.iter_mut().zip(c.quality.iter_mut()) {
+                if !v.is_finite() {
                     counts.non_finite += 1;
-                    (f64::NAN, Quality::Bad)
-                };
-                ts.push(t);
-                values.push(v);
-                quality.push(q);
-                origin.push((*f as u32, c.row[i]));
+                    *v = f64::NAN;
+                    *q = Quality::Bad;
+                }
+            }
+            if want_origin {
+                origin.extend(c.row.iter().map(|&r| (f as u32, r)));
+            }
+            if ts.is_empty() {
+                (ts, values, quality) = (c.ts, c.value, c.quality);
+            } else {
+                ts.extend_from_slice(&c.ts);
+                values.extend_from_slice(&c.value);
+                quality.extend_from_slice(&c.quality);
             }
         }
         if ts.windows(2).any(|w| w[1] < w[0]) {
@@ -502,7 +527,9 @@ impl InputSet {
             ts = order.iter().map(|&i| ts[i]).collect();
             values = order.iter().map(|&i| values[i]).collect();
             quality = order.iter().map(|&i| quality[i]).collect();
-            origin = order.iter().map(|&i| origin[i]).collect();
+            if want_origin {
+                origin = order.iter().map(|&i| origin[i]).collect();
+            }
         }
         if ts.windows(2).any(|w| w[1] == w[0]) {
             self.drop_duplicates(&tag, &mut ts, &mut values, &mut quality, &origin, &mut counts)?;

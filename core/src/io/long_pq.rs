@@ -19,9 +19,10 @@ use super::cols::{
 };
 use super::input::{Chunk, LongIndex, Run, Stamp};
 use super::long::{open_file, quiet_panics};
-use super::quality::QualityMap;
+use super::quality::{QualityMap, RawQuality};
 use super::{IoError, Result};
 use crate::pipeline::{InputSpec, QualityCoding};
+use crate::series::Quality;
 
 /// Rows per record batch when reading.
 const BATCH_ROWS: usize = 64 * 1024;
@@ -369,30 +370,43 @@ impl ParquetLong {
             };
             let take = ((run.len - cursor.1) as usize).min(n - i);
             let Some(chunk) = out.get_mut(&run.tag) else { break };
-            for k in i..i + take {
-                let row = run.start + cursor.1 + (k - i) as u64 + 1;
-                let ts = match times.micros(k) {
-                    Ok(Some(t)) => t,
-                    Ok(None) => return Err(bad_time(path, row, &c.time, "null", "the time is null")),
-                    Err(raw) => {
-                        return Err(bad_time(
-                            path,
-                            row,
-                            &c.time,
-                            &raw,
-                            "out of range (beyond i64 microseconds since 1970)",
-                        ))
-                    }
-                };
-                let v = values.get(k).unwrap_or(f64::NAN);
-                let q = match &quality {
-                    None => crate::series::Quality::Good,
-                    Some((col, map)) => map
-                        .map(col.get(k))
-                        .map_err(|reason| bad_row(path, row, c.quality.as_deref().unwrap_or(""), reason))?,
-                };
-                chunk.push(ts, times.local, v, q, row);
+            let first_row = run.start + cursor.1 + 1;
+            chunk.note_local(times.local, take);
+            if let Err(k) = times.extend_into(&mut chunk.ts, i, take) {
+                let row = first_row + (k - i) as u64;
+                return Err(match times.micros(k) {
+                    Err(raw) => bad_time(path, row, &c.time, &raw, "out of range (beyond i64 microseconds since 1970)"),
+                    _ => bad_time(path, row, &c.time, "null", "the time is null"),
+                });
             }
+            values.extend_into(&mut chunk.value, i, take);
+            match &quality {
+                None => chunk.quality.extend(std::iter::repeat_n(Quality::Good, take)),
+                Some((col, map)) => {
+                    // Codes repeat: map each distinct run of equal cells once.
+                    let mut last: Option<(RawQuality, Quality)> = None;
+                    for k in i..i + take {
+                        let raw = col.get(k);
+                        let q = match last {
+                            Some((r, q)) if r == raw => q,
+                            _ => {
+                                let q = map.map(raw).map_err(|reason| {
+                                    bad_row(
+                                        path,
+                                        first_row + (k - i) as u64,
+                                        c.quality.as_deref().unwrap_or(""),
+                                        reason,
+                                    )
+                                })?;
+                                last = Some((raw, q));
+                                q
+                            }
+                        };
+                        chunk.quality.push(q);
+                    }
+                }
+            }
+            chunk.row.extend(first_row..first_row + take as u64);
             cursor.1 += take as u64;
             i += take;
             if cursor.1 == run.len {

@@ -95,6 +95,7 @@ mod long;
 mod long_csv;
 mod long_pq;
 mod output;
+mod output_encode;
 mod quality;
 mod time;
 mod wide;
@@ -104,7 +105,9 @@ use std::path::Path;
 pub use atomic::{OutputDir, STAGING_PREFIX};
 pub use error::{BoxError, IoError, MAX_TAGS_LISTED};
 pub use input::{InputFileInfo, InputOptions, InputSet};
-pub use output::{cleaned_schema, writer_properties, CleanedWriter, META_RUN_ID, META_VERSION, ROW_GROUP_ROWS};
+pub use output::{
+    cleaned_schema, writer_properties, CleanedWriter, BATCH_ROWS, META_RUN_ID, META_VERSION, ROW_GROUP_ROWS,
+};
 
 /// Shorthand for results of this module.
 pub type Result<T> = std::result::Result<T, IoError>;

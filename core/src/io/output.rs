@@ -19,16 +19,21 @@
 //! The writer writes `<path>.partial` and renames it to `<path>` in
 //! [`CleanedWriter::close`]; a writer dropped without `close` removes the
 //! partial file.
+//!
+//! Speed: rows are buffered by the caller and encoded on a background
+//! thread (two threads, in fact; see `output_encode.rs`), so the caller can
+//! read and clean the next tags meanwhile
+//! ([`CleanedWriter::create_with_threads`] with 1 encodes on the caller's
+//! thread instead). At most two batches of
+//! [`BATCH_ROWS`] rows are held at once. An encoding error is returned by
+//! the next [`CleanedWriter::write_tag`] or by [`CleanedWriter::close`].
 
 use std::fs::File;
 use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::mpsc::SyncSender;
 use std::sync::Arc;
 
-use arrow_array::builder::NullBufferBuilder;
-use arrow_array::types::Int32Type;
-use arrow_array::{
-    ArrayRef, DictionaryArray, Float64Array, Int32Array, RecordBatch, StringArray, TimestampMicrosecondArray,
-};
 use arrow_schema::{DataType, Field, Schema, SchemaRef, TimeUnit};
 use parquet::arrow::ArrowWriter;
 use parquet::basic::{Compression as PqCompression, Encoding, ZstdLevel};
@@ -36,14 +41,15 @@ use parquet::file::metadata::KeyValue;
 use parquet::file::properties::WriterProperties;
 use parquet::schema::types::ColumnPath;
 
+use super::output_encode::{spawn, Buffer, Encoder, Worker};
 use super::{IoError, Result};
 use crate::pipeline::Compression;
-use crate::series::{Fault, Status, TagTable};
+use crate::series::{Status, TagTable};
 
 /// Rows per row group of `cleaned.parquet` (about one million).
 pub const ROW_GROUP_ROWS: usize = 1 << 20;
-/// Rows buffered before a record batch is handed to the Parquet writer.
-const BATCH_ROWS: usize = 64 * 1024;
+/// Rows buffered before they are handed to the encoding thread.
+pub const BATCH_ROWS: usize = 64 * 1024;
 /// Metadata key of the run id.
 pub const META_RUN_ID: &str = "tagwright.run_id";
 /// Metadata key of the tool version.
@@ -90,37 +96,20 @@ pub fn writer_properties(compression: Compression, metadata: Vec<KeyValue>) -> W
     b.build()
 }
 
-/// Rows waiting to be written.
-#[derive(Default)]
-struct Buffer {
-    /// Tags of this batch; `tag_keys` index them.
-    tags: Vec<String>,
-    tag_keys: Vec<i32>,
-    ts: Vec<i64>,
-    raw: Vec<f64>,
-    /// Rows whose `raw` is null (inserted rows).
-    raw_null: Vec<bool>,
-    value: Vec<f64>,
-    std: Vec<f64>,
-    status: Vec<i32>,
-    fault: Vec<Option<i32>>,
-}
-
-impl Buffer {
-    fn len(&self) -> usize {
-        self.ts.len()
-    }
-}
-
 /// Writes `cleaned.parquet` tag by tag. See the module documentation.
 pub struct CleanedWriter {
     path: PathBuf,
     partial: PathBuf,
-    writer: Option<ArrowWriter<File>>,
-    schema: SchemaRef,
     buf: Buffer,
     last_tag: Option<String>,
     rows: u64,
+    /// The encoding thread and its input; `None` once closed (or failed),
+    /// and when encoding runs on the caller's thread (`inline`).
+    tx: Option<SyncSender<Buffer>>,
+    worker: Option<Worker>,
+    inline: Option<Encoder>,
+    /// Set when the writer is dropped without `close`: the worker stops.
+    abort: Arc<AtomicBool>,
 }
 
 impl std::fmt::Debug for CleanedWriter {
@@ -130,8 +119,18 @@ impl std::fmt::Debug for CleanedWriter {
 }
 
 impl CleanedWriter {
-    /// Starts `path` (written as `<path>.partial` until [`CleanedWriter::close`]).
+    /// Starts `path` (written as `<path>.partial` until [`CleanedWriter::close`]),
+    /// encoding on two background threads.
     pub fn create(path: &Path, run_id: &str, compression: Compression) -> Result<Self> {
+        Self::create_with_threads(path, run_id, compression, 2)
+    }
+
+    /// As [`CleanedWriter::create`], with the number of encoding threads:
+    /// 1 encodes on the caller's thread inside `write_tag` and `close` (for
+    /// a run limited to one thread); 2 or more encode on a background
+    /// thread and a helper, in parallel with the caller. The file is the
+    /// same either way.
+    pub fn create_with_threads(path: &Path, run_id: &str, compression: Compression, threads: usize) -> Result<Self> {
         let mut name = path.as_os_str().to_owned();
         name.push(".partial");
         let partial = PathBuf::from(name);
@@ -141,16 +140,29 @@ impl CleanedWriter {
             KeyValue::new(META_VERSION.to_string(), env!("CARGO_PKG_VERSION").to_string()),
         ];
         let schema = cleaned_schema();
+        // The ArrowWriter sets up the Parquet schema and the embedded Arrow
+        // schema; its lower-level parts then write the row groups.
         let writer = ArrowWriter::try_new(file, schema.clone(), Some(writer_properties(compression, metadata)))
             .map_err(|e| write_error(&partial, e))?;
+        let (file, factory) = writer.into_serialized_writer().map_err(|e| write_error(&partial, e))?;
+        let abort = Arc::new(AtomicBool::new(false));
+        let encoder = Encoder::new(partial.clone(), file, factory, schema, threads > 1);
+        let (tx, worker, inline) = if threads > 1 {
+            let (tx, worker) = spawn(encoder, abort.clone())?;
+            (Some(tx), Some(worker), None)
+        } else {
+            (None, None, Some(encoder))
+        };
         Ok(CleanedWriter {
             path: path.to_path_buf(),
             partial,
-            writer: Some(writer),
-            schema,
-            buf: Buffer::default(),
+            buf: Buffer::with_capacity(BATCH_ROWS + BATCH_ROWS / 8),
             last_tag: None,
             rows: 0,
+            tx,
+            worker,
+            inline,
+            abort,
         })
     }
 
@@ -196,56 +208,47 @@ impl CleanedWriter {
         Ok(())
     }
 
-    /// Hands the buffered rows to the Parquet writer.
+    /// Hands the buffered rows to the encoding thread.
     fn flush(&mut self) -> Result<()> {
         if self.buf.len() == 0 {
             return Ok(());
         }
-        let b = std::mem::take(&mut self.buf);
-        let err = |e: arrow_schema::ArrowError| write_error(&self.partial, e);
-        let tag = DictionaryArray::<Int32Type>::try_new(
-            Int32Array::from(b.tag_keys),
-            Arc::new(StringArray::from(b.tags)) as ArrayRef,
-        )
-        .map_err(err)?;
-        let status_names: Vec<&str> = Status::ALL.iter().map(|s| s.as_str()).collect();
-        let status = DictionaryArray::<Int32Type>::try_new(
-            Int32Array::from(b.status),
-            Arc::new(StringArray::from(status_names)) as ArrayRef,
-        )
-        .map_err(err)?;
-        let fault_names: Vec<&str> = Fault::ALL.iter().map(|f| f.as_str()).collect();
-        let fault = DictionaryArray::<Int32Type>::try_new(
-            Int32Array::from(b.fault),
-            Arc::new(StringArray::from(fault_names)) as ArrayRef,
-        )
-        .map_err(err)?;
-        let ts = TimestampMicrosecondArray::new(b.ts.into(), None).with_timezone("UTC");
-        let columns: Vec<ArrayRef> = vec![
-            Arc::new(tag),
-            Arc::new(ts),
-            Arc::new(raw_floats(b.raw, &b.raw_null)),
-            Arc::new(nullable_floats(b.value)),
-            Arc::new(nullable_floats(b.std)),
-            Arc::new(status),
-            Arc::new(fault),
-        ];
-        let batch = RecordBatch::try_new(self.schema.clone(), columns).map_err(err)?;
-        let Some(w) = self.writer.as_mut() else {
-            return Err(write_error(&self.partial, "the writer is closed"));
+        let b = std::mem::replace(&mut self.buf, Buffer::with_capacity(BATCH_ROWS + BATCH_ROWS / 8));
+        if let Some(enc) = self.inline.as_mut() {
+            return enc.push(b);
+        }
+        let sent = match &self.tx {
+            Some(tx) => tx.send(b).is_ok(),
+            None => false,
         };
-        w.write(&batch).map_err(|e| write_error(&self.partial, e))
+        if sent {
+            return Ok(());
+        }
+        // The worker stopped: its error says why.
+        self.tx = None;
+        match self.join() {
+            Err(e) => Err(e),
+            Ok(_) => Err(write_error(&self.partial, "the writer is closed")),
+        }
     }
 
-    /// Writes the footer, syncs the file and renames it into place; returns
-    /// the number of rows written.
+    /// Waits for the encoding thread to finish.
+    fn join(&mut self) -> Result<Option<File>> {
+        match self.worker.take() {
+            Some(h) => h.join().unwrap_or_else(|_| Err(write_error(&self.partial, "the encoding thread panicked"))),
+            None => Err(write_error(&self.partial, "the writer is closed")),
+        }
+    }
+
+    /// Encodes what is left, writes the footer, syncs the file and renames
+    /// it into place; returns the number of rows written.
     pub fn close(mut self) -> Result<u64> {
         self.flush()?;
-        let Some(w) = self.writer.take() else {
-            return Err(write_error(&self.partial, "the writer is closed"));
+        self.tx = None;
+        let file = match self.inline.take() {
+            Some(enc) => Some(enc.finish()?),
+            None => self.join()?,
         };
-        let file = w.into_inner().map_err(|e| write_error(&self.partial, e))?;
-        file.sync_all().map_err(|e| write_error(&self.partial, e))?;
         drop(file);
         std::fs::rename(&self.partial, &self.path).map_err(|e| write_error(&self.path, e))?;
         Ok(self.rows)
@@ -254,38 +257,17 @@ impl CleanedWriter {
 
 impl Drop for CleanedWriter {
     fn drop(&mut self) {
-        if self.writer.take().is_some() {
+        if self.worker.is_some() {
+            // Dropped without `close` (an error upstream): stop the worker, remove the partial file.
+            self.abort.store(true, Ordering::Relaxed);
+            self.tx = None;
+            let _ = self.join();
+        }
+        // After a successful `close` the partial file was renamed away.
+        if self.partial.exists() {
             let _ = std::fs::remove_file(&self.partial);
         }
     }
-}
-
-/// Floats with NaN written as null.
-fn nullable_floats(mut v: Vec<f64>) -> Float64Array {
-    let mut nulls = NullBufferBuilder::new(v.len());
-    for x in v.iter_mut() {
-        if x.is_nan() {
-            nulls.append_null();
-            *x = 0.0;
-        } else {
-            nulls.append_non_null();
-        }
-    }
-    Float64Array::new(v.into(), nulls.finish())
-}
-
-/// The `raw` column: null on inserted rows, NaN kept elsewhere.
-fn raw_floats(mut v: Vec<f64>, null: &[bool]) -> Float64Array {
-    let mut nulls = NullBufferBuilder::new(v.len());
-    for (x, &n) in v.iter_mut().zip(null) {
-        if n {
-            nulls.append_null();
-            *x = 0.0;
-        } else {
-            nulls.append_non_null();
-        }
-    }
-    Float64Array::new(v.into(), nulls.finish())
 }
 
 fn write_error(path: &Path, e: impl Into<super::BoxError>) -> IoError {

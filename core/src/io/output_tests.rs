@@ -12,7 +12,7 @@ use parquet::file::reader::{FileReader, SerializedFileReader};
 use proptest::prelude::*;
 
 use super::*;
-use crate::series::{Quality, ReadCounts, Sampling, TagSeries};
+use crate::series::{Fault, Quality, ReadCounts, Sampling, TagSeries};
 
 /// One row as read back: tag, ts, raw, value, std, status, fault.
 /// (`raw` as bits, so that a NaN reading compares equal to itself.)
@@ -170,9 +170,27 @@ fn contract_breaches_are_errors_and_leave_no_file() {
 }
 
 #[test]
-fn many_rows_span_row_groups() {
+fn dropped_while_encoding_leaves_nothing() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("cleaned.parquet");
+    let mut w = CleanedWriter::create(&path, "r", Compression::Zstd).unwrap();
+    // More than a batch: the encoding thread has rows when the writer is dropped.
+    w.write_tag(&table("A", BATCH_ROWS + 10)).unwrap();
+    w.write_tag(&table("B", 10)).unwrap();
+    drop(w);
+    assert_eq!(std::fs::read_dir(dir.path()).unwrap().count(), 0);
+}
+
+#[test]
+fn many_rows_span_row_groups_and_threads_do_not_change_the_file() {
     let dir = tempfile::tempdir().unwrap();
     let path = dir.path().join("big.parquet");
+    let one = dir.path().join("one.parquet");
+    let mut w1 = CleanedWriter::create_with_threads(&one, "r", Compression::Snappy, 1).unwrap();
+    for k in 0..5 {
+        w1.write_tag(&table(&format!("T{k}"), ROW_GROUP_ROWS / 4 + 7)).unwrap();
+    }
+    w1.close().unwrap();
     let mut w = CleanedWriter::create(&path, "r", Compression::Snappy).unwrap();
     let n = ROW_GROUP_ROWS / 4 + 7;
     for k in 0..5 {
@@ -182,6 +200,7 @@ fn many_rows_span_row_groups() {
     let r = SerializedFileReader::new(std::fs::File::open(&path).unwrap()).unwrap();
     assert_eq!(r.metadata().num_row_groups(), 2);
     assert_eq!(r.metadata().row_group(0).num_rows() as usize, ROW_GROUP_ROWS);
+    assert!(std::fs::read(&path).unwrap() == std::fs::read(&one).unwrap(), "same bytes from 1 and 2 threads");
 }
 
 fn arb_table(tag: String) -> impl Strategy<Value = TagTable> {
@@ -221,10 +240,12 @@ proptest! {
             letters.into_iter().map(|l| arb_table(format!("{}T-{l:02}.PV", (b'A' + l) as char))).collect::<Vec<_>>()
         }),
         zstd in any::<bool>(),
+        threads in 1usize..3,
     ) {
         let dir = tempfile::tempdir().unwrap();
         let path = dir.path().join("c.parquet");
-        let mut w = CleanedWriter::create(&path, "p", if zstd { Compression::Zstd } else { Compression::Snappy }).unwrap();
+        let compression = if zstd { Compression::Zstd } else { Compression::Snappy };
+        let mut w = CleanedWriter::create_with_threads(&path, "p", compression, threads).unwrap();
         for t in &tables {
             w.write_tag(t).unwrap();
         }
