@@ -1,7 +1,7 @@
 //! Pipeline steps: the [`Step`] trait every cleaning step implements
 //! (built-in or loaded from an external plugin), the [`Registry`] that makes
 //! steps from their YAML name and parameters, and the built-in steps that need
-//! no model ([`quality`], [`range`]).
+//! no model ([`QualityStep`], [`RangeStep`]).
 //!
 //! A step works on a [`TagWork`]: the tag's output table, the tag's resolved
 //! settings, a report the step may fill in (model, parameters) and the state

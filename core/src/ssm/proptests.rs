@@ -128,6 +128,9 @@ proptest! {
         prop_assert!((dense - jumped).abs() <= 1e-9 * dense.abs().max(1.0), "{} vs {}", dense, jumped);
     }
 
+    /// constrain(unconstrain(phi)) returns phi to 1e-10; u itself comes back
+    /// to 1e-6 only, since the inverse map scales rounding by 1/(1 - pacf^2)
+    /// per lag (pacf = 0.98 at |u| = 5).
     #[test]
     fn stationarity_transform_roundtrips(u in prop::collection::vec(-5.0f64..5.0, 1..8)) {
         let mut phi = vec![0.0; u.len()];
@@ -135,14 +138,19 @@ proptest! {
         prop_assert!(arma::check_stationary(&phi).is_ok());
         let back = arma::unconstrain_stationary(&phi).unwrap();
         for (a, b) in u.iter().zip(&back) {
-            prop_assert!((a - b).abs() <= 1e-8 * a.abs().max(1.0), "{} vs {}", a, b);
+            prop_assert!((a - b).abs() <= 1e-6 * a.abs().max(1.0), "{} vs {}", a, b);
+        }
+        let mut again = vec![0.0; u.len()];
+        arma::constrain_stationary(&back, &mut again);
+        for (a, b) in phi.iter().zip(&again) {
+            prop_assert!((a - b).abs() <= 1e-10 * a.abs().max(1.0), "{} vs {}", a, b);
         }
         let mut theta = vec![0.0; u.len()];
         arma::constrain_invertible(&u, &mut theta);
         prop_assert!(arma::check_invertible(&theta).is_ok());
         let back = arma::unconstrain_invertible(&theta).unwrap();
         for (a, b) in u.iter().zip(&back) {
-            prop_assert!((a - b).abs() <= 1e-8 * a.abs().max(1.0));
+            prop_assert!((a - b).abs() <= 1e-6 * a.abs().max(1.0));
         }
     }
 }
