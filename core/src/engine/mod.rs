@@ -255,36 +255,34 @@ fn run_id(spec: &PipelineSpec, input: &InputSet, opts: &RunOptions) -> String {
 
 fn run_unit(unit: &Unit, series: Vec<TagSeries>, states: Vec<BTreeMap<String, serde_json::Value>>) -> Vec<TagResult> {
     let mut works: Vec<TagWork> = Vec::with_capacity(series.len());
-    let mut counts = Vec::with_capacity(series.len());
-    for (s, state) in series.into_iter().zip(states) {
+    for (s, state) in series.iter().zip(states) {
         let resolved = unit.tags.iter().find(|(t, _)| *t == s.tag).map(|(_, r)| r);
         let settings = resolved.map(|r| r.settings.clone()).unwrap_or_default();
         let period = settings.period_us.or_else(|| infer_period_us(&s.ts_us)).unwrap_or(1_000_000);
-        let table = TagTable::from_series(&s, period, settings.sampling);
-        counts.push(s.counts);
+        let table = TagTable::from_series(s, period, settings.sampling);
         works.push(TagWork { table, settings: Arc::new(settings), report: Default::default(), state });
     }
     let group = unit.tags.first().and_then(|(_, r)| r.group.as_ref().map(|g| g.id.clone()));
-    let originals: Vec<TagTable> = works.iter().map(|w| w.table.clone()).collect();
     let error = run_chain(unit, &mut works);
     works
         .into_iter()
-        .zip(originals)
-        .zip(counts)
-        .map(|((w, original), counts)| {
+        .zip(&series)
+        .map(|(w, s)| {
+            // A failed tag keeps its raw readings (rebuilt from the input, so
+            // the success path copies nothing); the provenance says why.
+            let raw = || TagTable::from_series(s, w.table.period_us, w.table.sampling);
             let (table, error) = match &error {
-                // A failed tag keeps its raw readings; the provenance says why.
-                Some(e) => (original, Some(e.clone())),
+                Some(e) => (raw(), Some(e.clone())),
                 None => match w.table.check() {
                     Ok(()) => (w.table, None),
-                    Err(e) => (original, Some(format!("internal check failed: {e}"))),
+                    Err(e) => (raw(), Some(format!("internal check failed: {e}"))),
                 },
             };
             TagResult {
                 table,
                 work_report: w.report,
                 state: w.state,
-                counts,
+                counts: s.counts,
                 error,
                 step_names: unit.names.clone(),
                 group: group.clone(),
