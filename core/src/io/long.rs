@@ -20,6 +20,7 @@ use parquet::arrow::ProjectionMask;
 
 use super::cols::{is_numeric, is_string, StrCol, TimeCol, ValueCol, TAG_TYPES, VALUE_TYPES};
 use super::error::MAX_TAGS_LISTED;
+use super::long_pq::find_column;
 use super::time::TimeVal;
 use super::{format_ts_us, ColumnMap, IoError, ReadStats, Result, TagSamples};
 use crate::pipeline::EpochUnit;
@@ -310,26 +311,8 @@ fn read_parquet_unguarded(path: &Path, tag: &str, columns: &ColumnMap) -> Result
     let file = open_file(path)?;
     let builder = ParquetRecordBatchReaderBuilder::try_new(file).map_err(|e| corrupt(e.into()))?;
     let schema = builder.schema().clone();
-    let find = |role: &'static str, name: &str, ok: fn(&DataType) -> bool, expected| {
-        let (i, field) = schema.fields().iter().enumerate().find(|(_, f)| f.name() == name).ok_or_else(|| {
-            IoError::MissingColumn {
-                path: path.to_path_buf(),
-                role,
-                column: name.to_string(),
-                available: schema.fields().iter().map(|f| f.name().clone()).collect(),
-            }
-        })?;
-        if !ok(field.data_type()) {
-            return Err(IoError::ColumnType {
-                path: path.to_path_buf(),
-                role,
-                column: name.to_string(),
-                found: field.data_type().to_string(),
-                expected,
-            });
-        }
-        Ok(i)
-    };
+    let find =
+        |role, name: &str, ok: fn(&DataType) -> bool, expected| find_column(path, &schema, role, name, ok, expected);
     let i_tag = find(
         TAG,
         &columns.tag,
