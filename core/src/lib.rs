@@ -21,3 +21,5 @@ pub mod plugin;
 pub mod rng;
 pub mod series;
 pub mod ssm;
+pub mod stats;
+pub mod tagmodel;

@@ -23,11 +23,11 @@ use rayon::prelude::*;
 use sha2::{Digest, Sha256};
 
 pub use events::{events, Event};
-pub use provenance::CAUTION;
+pub use provenance::{time_text, CAUTION};
 
 use crate::io::{infer_period_us, CleanedWriter, InputOptions, InputSet, IoError, OutputDir};
 use crate::pipeline::{PipelineSpec, ResolvedTag};
-use crate::plugin::{Registry, Step, StepContext, TagWork};
+use crate::plugin::{survey, Registry, Step, StepContext, Survey, TagWork};
 use crate::series::{Fault, Status, TagSeries, TagTable};
 
 /// Options of one run.
@@ -161,16 +161,25 @@ pub fn run(
         v
     };
 
+    // Plant-wide survey of abrupt changes, when a step asks for it: one extra
+    // read of the selected tags, chunk by chunk, keeping only change times.
+    let pool = rayon::ThreadPoolBuilder::new()
+        .num_threads(opts.threads.unwrap_or(0))
+        .build()
+        .map_err(|e| EngineError::Threads(e.to_string()))?;
+    let chunk = opts.chunk_units.unwrap_or_else(|| 8 * pool.current_num_threads()).max(1);
+    let survey = if units.iter().any(|u| u.chain.iter().any(|s| s.uses_survey())) {
+        Some(run_survey(&input, &units, chunk, &pool)?)
+    } else {
+        None
+    };
+
     let run_id = run_id(spec, &input, opts);
     outcome.run_id = run_id.clone();
     let mut state_in = state::load(opts.state_dir.as_deref()).map_err(EngineError::State)?;
     let mut state_out: BTreeMap<String, BTreeMap<String, serde_json::Value>> = BTreeMap::new();
 
     let out = OutputDir::create(&opts.out_dir).map_err(EngineError::Output)?;
-    let pool = rayon::ThreadPoolBuilder::new()
-        .num_threads(opts.threads.unwrap_or(0))
-        .build()
-        .map_err(|e| EngineError::Threads(e.to_string()))?;
     // The writer encodes on a background thread unless the run is held to one.
     let mut writer = CleanedWriter::create_with_threads(
         &out.path("cleaned.parquet"),
@@ -180,7 +189,6 @@ pub fn run(
     )
     .map_err(EngineError::Output)?;
     let mut prov = provenance::Body::new();
-    let chunk = opts.chunk_units.unwrap_or_else(|| 8 * pool.current_num_threads()).max(1);
 
     // Results wait here until every tag before them in sorted order is written.
     let mut pending: BTreeMap<String, TagResult> = BTreeMap::new();
@@ -199,7 +207,7 @@ pub fn run(
             })
             .collect();
         let results: Vec<Vec<TagResult>> =
-            pool.install(|| jobs.into_par_iter().map(|(u, s, st)| run_unit(u, s, st)).collect());
+            pool.install(|| jobs.into_par_iter().map(|(u, s, st)| run_unit(u, s, st, survey.as_ref())).collect());
         for r in results.into_iter().flatten() {
             pending.insert(r.table.tag.clone(), r);
         }
@@ -253,7 +261,45 @@ fn run_id(spec: &PipelineSpec, input: &InputSet, opts: &RunOptions) -> String {
     hex::encode(&h.finalize()[..8])
 }
 
-fn run_unit(unit: &Unit, series: Vec<TagSeries>, states: Vec<BTreeMap<String, serde_json::Value>>) -> Vec<TagResult> {
+/// Surveys every tag of the units for abrupt changes (see [`survey`]).
+fn run_survey(input: &InputSet, units: &[Unit], chunk: usize, pool: &rayon::ThreadPool) -> Result<Survey, EngineError> {
+    let mut out = Survey::new();
+    for batch in units.chunks(chunk) {
+        let mut names = Vec::new();
+        let mut periods = BTreeMap::new();
+        for (t, r) in batch.iter().flat_map(|u| u.tags.iter()) {
+            // Exception-reported tags store only movements: every stored
+            // sample is a change by construction, so they give no evidence.
+            if r.settings.sampling == crate::series::Sampling::Regular {
+                names.push(t.clone());
+                periods.insert(t.clone(), (r.settings.period_us, r.group.as_ref().map(|g| g.id.clone())));
+            }
+        }
+        let series = input.read_tags(&names).map_err(EngineError::Input)?;
+        let found: Vec<(String, Vec<i64>)> = pool.install(|| {
+            series
+                .par_iter()
+                .map(|s| {
+                    let period = periods.get(&s.tag).and_then(|p| p.0).or_else(|| infer_period_us(&s.ts_us));
+                    (s.tag.clone(), survey::change_times(s, period.unwrap_or(1_000_000)))
+                })
+                .collect()
+        });
+        for (tag, times) in found {
+            let group = periods.get(&tag).and_then(|p| p.1.as_deref());
+            out.add(&tag, group, &times);
+        }
+    }
+    out.finish();
+    Ok(out)
+}
+
+fn run_unit(
+    unit: &Unit,
+    series: Vec<TagSeries>,
+    states: Vec<BTreeMap<String, serde_json::Value>>,
+    survey: Option<&Survey>,
+) -> Vec<TagResult> {
     let mut works: Vec<TagWork> = Vec::with_capacity(series.len());
     for (s, state) in series.iter().zip(states) {
         let resolved = unit.tags.iter().find(|(t, _)| *t == s.tag).map(|(_, r)| r);
@@ -263,7 +309,7 @@ fn run_unit(unit: &Unit, series: Vec<TagSeries>, states: Vec<BTreeMap<String, se
         works.push(TagWork { table, settings: Arc::new(settings), report: Default::default(), state });
     }
     let group = unit.tags.first().and_then(|(_, r)| r.group.as_ref().map(|g| g.id.clone()));
-    let error = run_chain(unit, &mut works);
+    let error = run_chain(unit, &mut works, survey);
     works
         .into_iter()
         .zip(&series)
@@ -292,9 +338,9 @@ fn run_unit(unit: &Unit, series: Vec<TagSeries>, states: Vec<BTreeMap<String, se
 }
 
 /// Runs the chain; a step error or panic fails the whole unit.
-fn run_chain(unit: &Unit, works: &mut [TagWork]) -> Option<String> {
+fn run_chain(unit: &Unit, works: &mut [TagWork], survey: Option<&Survey>) -> Option<String> {
     for (i, step) in unit.chain.iter().enumerate() {
-        let ctx = StepContext { index: i as u16 };
+        let ctx = StepContext { index: i as u16, survey };
         let result = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
             if step.couples_tags() {
                 step.apply(works, &ctx)

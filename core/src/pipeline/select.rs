@@ -169,6 +169,7 @@ impl PartialSettings {
         }
         if let Some(g) = &self.group {
             settings.group = Some(g.id.clone());
+            settings.group_trusted = g.trusted.clone();
         }
     }
 }
@@ -270,7 +271,7 @@ rules:
     model: local-level+arma(1,0)
   - tags: ["FT-1[0-9][0-9].PV", TT-2204A.PV]
     sampling: {exception: {deadband: 0.5}}
-    group: {kind: redundant, name: header}
+    group: {kind: redundant, name: header, trusted: TT-2204A.PV}
     steps: [quality]
   - tags: FT-199.PV
     steps: []
@@ -343,6 +344,7 @@ rules:
         assert_eq!(s.uncertain_factor, 3.0);
         assert_eq!(s.sampling, Sampling::Exception { deadband: 0.5 });
         assert_eq!(s.group.as_deref(), Some("header"));
+        assert_eq!(s.group_trusted.as_deref(), Some("TT-2204A.PV"));
         assert_eq!(ft.group.as_ref().map(|g| g.id.as_str()), Some("header"));
         // The chain is the last selecting rule's with steps.
         assert_eq!(ft.steps.iter().map(|s| s.name.as_str()).collect::<Vec<_>>(), ["quality"]);

@@ -182,7 +182,7 @@ mod tests {
             vec![Quality::Good, Quality::Good, Quality::Bad, Quality::Uncertain],
             None,
         )];
-        step.apply(&mut w, &StepContext { index: 0 }).unwrap();
+        step.apply(&mut w, &StepContext::new(0)).unwrap();
         let t = &w[0].table;
         assert_eq!(t.status, [Status::Ok, Status::Rejected, Status::Rejected, Status::Ok]);
         assert_eq!(t.fault[1], Some(Fault::BadQuality));
@@ -195,7 +195,7 @@ mod tests {
         let reg = Registry::with_builtins();
         let step = reg.make("range", &serde_json::Value::Null).unwrap();
         let mut w = [work(vec![5.0, -1.0, 401.0], vec![Quality::Good; 3], Some((0.0, 400.0)))];
-        step.apply(&mut w, &StepContext { index: 1 }).unwrap();
+        step.apply(&mut w, &StepContext::new(1)).unwrap();
         let t = &w[0].table;
         assert_eq!(t.status, [Status::Ok, Status::Rejected, Status::Rejected]);
         assert_eq!((t.stat[1], t.threshold[1]), (-1.0, 0.0));
@@ -203,7 +203,7 @@ mod tests {
         assert_eq!(t.decided_by[2], 1);
         // No range anywhere: the tag fails with a message naming it.
         let mut w = [work(vec![5.0], vec![Quality::Good], None)];
-        assert!(step.apply(&mut w, &StepContext { index: 0 }).is_err());
+        assert!(step.apply(&mut w, &StepContext::new(0)).is_err());
         // Bad parameters are refused when the pipeline is checked.
         assert!(reg.make("range", &serde_json::json!({"low": 5, "high": 1})).is_err());
         assert!(reg.make("range", &serde_json::json!({"lo": 5})).is_err());

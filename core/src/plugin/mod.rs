@@ -9,6 +9,7 @@
 //! against redundant transmitters) receives the whole group at once.
 
 pub mod builtin;
+pub mod survey;
 
 use std::collections::BTreeMap;
 use std::sync::Arc;
@@ -19,6 +20,7 @@ use crate::series::{Sampling, TagTable};
 use crate::ssm::ModelSpec;
 
 pub use builtin::{QualityStep, RangeStep};
+pub use survey::Survey;
 
 /// Settings of one tag after the pipeline's rules are resolved.
 #[derive(Debug, Clone, PartialEq)]
@@ -37,6 +39,8 @@ pub struct TagSettings {
     pub uncertain_factor: f64,
     /// Name of the group of tags coupled with this one, if any.
     pub group: Option<String>,
+    /// The member of that group trusted as reference (`group.trusted`), if any.
+    pub group_trusted: Option<String>,
 }
 
 impl Default for TagSettings {
@@ -49,6 +53,7 @@ impl Default for TagSettings {
             sampling: Sampling::Regular,
             uncertain_factor: 4.0,
             group: None,
+            group_trusted: None,
         }
     }
 }
@@ -80,10 +85,20 @@ pub struct TagWork {
 }
 
 /// Where a step runs.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub struct StepContext {
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct StepContext<'a> {
     /// Position of the step in the tag's chain (recorded as `decided_by`).
     pub index: u16,
+    /// The run's plant-wide survey of abrupt changes, when a step of the run
+    /// asked for it ([`Step::uses_survey`]).
+    pub survey: Option<&'a Survey>,
+}
+
+impl StepContext<'_> {
+    /// A context for step `index` without a survey.
+    pub fn new(index: u16) -> Self {
+        StepContext { index, survey: None }
+    }
 }
 
 /// A step failed for a tag (or group); the engine fails that tag only.
@@ -105,6 +120,11 @@ pub trait Step: Send + Sync {
     }
     /// True if the step works on a group of coupled tags at once.
     fn couples_tags(&self) -> bool {
+        false
+    }
+    /// True if the step needs the plant-wide survey of abrupt changes (the
+    /// engine then surveys every selected tag before the steps run).
+    fn uses_survey(&self) -> bool {
         false
     }
     /// Processes one tag (`tags.len() == 1`) or, for a coupling step, a group.

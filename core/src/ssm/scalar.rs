@@ -184,7 +184,8 @@ pub(crate) fn smooth(model: &StateSpace, obs: &Observations, filt: &FilterOutput
     let n = filt.n;
     let z = model.z[(0, 0)];
     out.reset(n, 1);
-    let (state, cov) = (&mut out.state, &mut out.cov);
+    let keep_aux = out.keep_aux;
+    let (state, cov, aux_r, aux_n) = (&mut out.state, &mut out.cov, &mut out.r, &mut out.n_cum);
     let mut sys = model.step_system();
     let (mut tr, mut cur_dt) = (sys.t[(0, 0)], 1.0);
     let (mut r0, mut n0, mut r1, mut n1, mut n2) = (0.0, 0.0, 0.0, 0.0, 0.0);
@@ -220,6 +221,10 @@ pub(crate) fn smooth(model: &StateSpace, obs: &Observations, filt: &FilterOutput
             ElemKind::Missing | ElemKind::Degenerate => {}
         }
         let (a, p) = (filt.a_pred[t], filt.p_pred[t]);
+        if keep_aux {
+            aux_r[t] = r0;
+            aux_n[t] = n0;
+        }
         if in_diffuse {
             let pinf = filt.p_inf_pred[t];
             state[t] = a + p * r0 + pinf * r1;

@@ -47,6 +47,14 @@ pub struct SmootherOutput {
     pub state: Vec<f64>,
     /// V_t = Var(a_t | y_1..y_n) (n x m x m, column-major blocks).
     pub cov: Vec<f64>,
+    /// Set before smoothing to also keep `r` and `n_diag` (for auxiliary residuals).
+    pub keep_aux: bool,
+    /// r_{t-1} of DK (2012) §4.4 at index t (n x m): the smoothing cumulant
+    /// after the observations at t, so a_hat_t = a_t + P_t r. Kept only with
+    /// `keep_aux`, and meaningful only after the diffuse phase.
+    pub r: Vec<f64>,
+    /// N_{t-1} at index t (n x m x m, column-major blocks), with `keep_aux`.
+    pub n_cum: Vec<f64>,
 }
 
 impl SmootherOutput {
@@ -56,6 +64,23 @@ impl SmootherOutput {
         self.m = m;
         self.state.resize(n * m, 0.0);
         self.cov.resize(n * m * m, 0.0);
+        let aux = if self.keep_aux { n * m } else { 0 };
+        self.r.resize(aux, 0.0);
+        self.n_cum.resize(aux * m, 0.0);
+    }
+
+    /// Standardised smoothed disturbance of state `j` between t and t+1
+    /// (an auxiliary residual, Harvey & Koopman 1992; de Jong & Penzer 1998):
+    /// r_j / sqrt(N_jj) taken at t+1, for a state whose disturbance enters
+    /// alone (a random-walk level). NaN without `keep_aux`, at the last time,
+    /// or where N_jj is 0.
+    pub fn state_aux(&self, t: usize, j: usize) -> f64 {
+        let m = self.m;
+        let i = (t + 1) * m + j;
+        match (self.r.get(i), self.n_cum.get((t + 1) * m * m + j * m + j)) {
+            (Some(&r), Some(&n)) if n > 0.0 => r / n.sqrt(),
+            _ => f64::NAN,
+        }
     }
 
     /// Smoothed signal z a_hat_t + d for observation element i of the model.
@@ -195,6 +220,10 @@ where
             v -= &pinf * &n2 * &pinf;
         }
         tidy(&mut v);
+        if out.keep_aux {
+            out.r[t * m..(t + 1) * m].copy_from_slice(r0.as_slice());
+            out.n_cum[t * m * m..(t + 1) * m * m].copy_from_slice(n0.as_slice());
+        }
         out.state[t * m..(t + 1) * m].copy_from_slice(a.as_slice());
         out.cov[t * m * m..(t + 1) * m * m].copy_from_slice(v.as_slice());
         // Step back through the transition T_{t-1}: r <- T'r, N <- T'NT.

@@ -152,6 +152,11 @@ impl fmt::Display for ModelSpec {
 }
 
 impl ModelSpec {
+    /// The local-level model (random-walk level plus observation noise).
+    pub fn local_level() -> Self {
+        ModelSpec { components: vec![Component::LocalLevel] }
+    }
+
     /// The components in the order written.
     pub fn components(&self) -> &[Component] {
         &self.components

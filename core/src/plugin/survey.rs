@@ -1,0 +1,258 @@
+//! Plant-wide evidence of abrupt changes, for telling a process change from
+//! a sensor fault.
+//!
+//! A legitimate process change (a trip, a setpoint change) moves the process,
+//! so it shows in several tags at about the same time; a sensor step shows in
+//! one tag alone. Before the steps run, the engine surveys every selected
+//! regular tag with a cheap model-free test and records the times of abrupt
+//! level changes; a step that finds a level shift in one tag asks the survey
+//! how many *other* tags changed near that time.
+//!
+//! The test: with `k` readings on each side of t, the difference of the two
+//! means d_t = mean(y[t..t+k]) - mean(y[t-k..t]); its typical size is the
+//! robust scale s = 1.4826 MAD(d) over the tag's window; t is a change when
+//! |d_t| > `SURVEY_Z` s and |d_t| is the largest of its excursion above that
+//! bound. Windows that straddle a gap (more than 2k periods of time) are
+//! skipped. The scale is the tag's own, so slow wander, however large, is
+//! the yardstick, and only changes that are abrupt for that tag count.
+
+use crate::series::{Quality, TagSeries};
+
+/// Readings on each side of the survey's two-mean test.
+pub const SURVEY_K: usize = 6;
+/// Bound of the test in robust standard deviations of the two-mean difference.
+pub const SURVEY_Z: f64 = 6.0;
+
+/// Times of abrupt changes per tag.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Survey {
+    /// (time µs UTC, tag index), sorted.
+    changes: Vec<(i64, u32)>,
+    tags: Vec<String>,
+    /// Group of each tag (redundant transmitters), if any.
+    groups: Vec<Option<String>>,
+}
+
+impl Survey {
+    /// An empty survey.
+    pub fn new() -> Self {
+        Survey::default()
+    }
+
+    /// Adds one tag's change times; `group` is its coupling group, if any.
+    pub fn add(&mut self, tag: &str, group: Option<&str>, times: &[i64]) {
+        let id = match self.tags.iter().position(|t| t == tag) {
+            Some(i) => i as u32,
+            None => {
+                self.tags.push(tag.to_string());
+                self.groups.push(group.map(str::to_string));
+                (self.tags.len() - 1) as u32
+            }
+        };
+        self.changes.extend(times.iter().map(|&t| (t, id)));
+    }
+
+    /// Sorts the changes; call once after the last [`Survey::add`].
+    pub fn finish(&mut self) {
+        self.changes.sort_unstable();
+    }
+
+    /// Number of tags surveyed with at least one change.
+    pub fn tags_with_changes(&self) -> usize {
+        let mut ids: Vec<u32> = self.changes.iter().map(|c| c.1).collect();
+        ids.sort_unstable();
+        ids.dedup();
+        ids.len()
+    }
+
+    /// The change times of `tag`.
+    pub fn times_of(&self, tag: &str) -> Vec<i64> {
+        let Some(me) = self.tags.iter().position(|t| t == tag) else { return Vec::new() };
+        self.changes.iter().filter(|c| c.1 as usize == me).map(|c| c.0).collect()
+    }
+
+    /// True if `tag` itself has a change in [from, to].
+    pub fn changed(&self, tag: &str, from_us: i64, to_us: i64) -> bool {
+        let a = self.changes.partition_point(|c| c.0 < from_us);
+        self.changes[a..]
+            .iter()
+            .take_while(|c| c.0 <= to_us)
+            .any(|c| self.tags.get(c.1 as usize).is_some_and(|t| t == tag))
+    }
+
+    /// The other members of `tag`'s group, and whether every one of them has
+    /// a change in [from, to]. `None` when the tag has no group or is alone in it.
+    pub fn group_moved(&self, tag: &str, from_us: i64, to_us: i64) -> Option<bool> {
+        let me = self.tags.iter().position(|t| t == tag)?;
+        let g = self.groups.get(me)?.as_ref()?;
+        let members: Vec<&str> = self
+            .tags
+            .iter()
+            .zip(&self.groups)
+            .filter(|(t, gg)| *t != tag && gg.as_ref() == Some(g))
+            .map(|(t, _)| t.as_str())
+            .collect();
+        if members.is_empty() {
+            return None;
+        }
+        let moved = self.others_within(tag, from_us, to_us);
+        Some(members.iter().all(|m| moved.contains(m)))
+    }
+
+    /// Whether a level change of `tag` at `at_us` is explained by the
+    /// process: every other member of its redundant group changed within
+    /// ±`window_us`, or at least `min_tags` other tags did. Returns the
+    /// corroborating tags when it is.
+    pub fn process_change(&self, tag: &str, at_us: i64, window_us: i64, min_tags: usize) -> Option<Vec<&str>> {
+        let (a, b) = (at_us - window_us, at_us + window_us);
+        let others = self.others_within(tag, a, b);
+        let group = self.group_moved(tag, a, b) == Some(true);
+        (group || (min_tags > 0 && others.len() >= min_tags)).then_some(others)
+    }
+
+    /// Distinct tags other than `tag` with a change in [from, to], sorted by name.
+    pub fn others_within(&self, tag: &str, from_us: i64, to_us: i64) -> Vec<&str> {
+        let a = self.changes.partition_point(|c| c.0 < from_us);
+        let mut names: Vec<&str> = self.changes[a..]
+            .iter()
+            .take_while(|c| c.0 <= to_us)
+            .filter_map(|c| self.tags.get(c.1 as usize).map(String::as_str))
+            .filter(|t| *t != tag)
+            .collect();
+        names.sort_unstable();
+        names.dedup();
+        names
+    }
+}
+
+/// Change times of one tag's readings (bad-quality and non-finite readings
+/// are skipped). `period_us` is the tag's nominal period.
+pub fn change_times(s: &TagSeries, period_us: i64) -> Vec<i64> {
+    let k = SURVEY_K;
+    let (ts, y): (Vec<i64>, Vec<f64>) = s
+        .ts_us
+        .iter()
+        .zip(&s.values)
+        .zip(&s.quality)
+        .filter(|((_, v), q)| v.is_finite() && **q != Quality::Bad)
+        .map(|((t, v), _)| (*t, *v))
+        .unzip();
+    let n = y.len();
+    if n < 4 * k {
+        return Vec::new();
+    }
+    let mut prefix = Vec::with_capacity(n + 1);
+    prefix.push(0.0);
+    for v in &y {
+        prefix.push(prefix.last().copied().unwrap_or(0.0) + v);
+    }
+    let span = 2 * k as i64 * period_us.max(1);
+    let mut d = vec![f64::NAN; n];
+    for t in k..=n - k {
+        if t < n && ts[t + k - 1] - ts[t - k] <= span {
+            let after = (prefix[t + k] - prefix[t]) / k as f64;
+            let before = (prefix[t] - prefix[t - k]) / k as f64;
+            d[t] = after - before;
+        }
+    }
+    let mut abs: Vec<f64> = d.iter().filter(|v| v.is_finite()).map(|v| v.abs()).collect();
+    if abs.len() < 2 * k {
+        return Vec::new();
+    }
+    // MAD of d around 0 (d is centred at 0 by construction).
+    let mid = abs.len() / 2;
+    abs.select_nth_unstable_by(mid, f64::total_cmp);
+    let scale = 1.4826 * abs[mid];
+    if scale <= 0.0 {
+        return Vec::new();
+    }
+    let bound = SURVEY_Z * scale;
+    let mut out = Vec::new();
+    let mut t = 0;
+    while t < n {
+        if d[t].is_finite() && d[t].abs() > bound {
+            let mut best = t;
+            while t < n && d[t].is_finite() && d[t].abs() > bound {
+                if d[t].abs() > d[best].abs() {
+                    best = t;
+                }
+                t += 1;
+            }
+            // Confirm with medians, which a lone spike does not move.
+            if best >= k && best + k <= n {
+                let dm = median6(&y[best..best + k]) - median6(&y[best - k..best]);
+                if dm.abs() > bound {
+                    out.push(ts[best]);
+                }
+            }
+        } else {
+            t += 1;
+        }
+    }
+    out
+}
+
+/// Median of a short slice.
+fn median6(v: &[f64]) -> f64 {
+    let mut buf = [0.0; SURVEY_K];
+    let n = v.len().min(SURVEY_K);
+    buf[..n].copy_from_slice(&v[..n]);
+    let b = &mut buf[..n];
+    b.sort_unstable_by(f64::total_cmp);
+    if n % 2 == 1 {
+        b[n / 2]
+    } else {
+        0.5 * (b[n / 2 - 1] + b[n / 2])
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::rng::Rng;
+    use crate::series::ReadCounts;
+
+    fn series(tag: &str, values: Vec<f64>) -> TagSeries {
+        let n = values.len();
+        TagSeries {
+            tag: tag.into(),
+            ts_us: (0..n as i64).map(|i| i * 5_000_000).collect(),
+            values,
+            quality: vec![Quality::Good; n],
+            counts: ReadCounts::default(),
+        }
+    }
+
+    #[test]
+    fn a_step_is_found_and_a_spike_or_noise_is_not() {
+        let mut rng = Rng::new(9);
+        let mut v: Vec<f64> = (0..2000).map(|_| 5.0 + 0.1 * rng.normal()).collect();
+        v[500] += 3.0; // a spike moves a k-mean by 0.5 only
+        for x in v.iter_mut().skip(1200) {
+            *x += 1.0;
+        }
+        let c = change_times(&series("FT-1", v), 5_000_000);
+        assert_eq!(c, vec![1200 * 5_000_000]);
+        let mut rng = Rng::new(10);
+        let quiet: Vec<f64> = (0..2000).map(|_| 5.0 + 0.1 * rng.normal()).collect();
+        assert!(change_times(&series("FT-2", quiet), 5_000_000).is_empty());
+    }
+
+    #[test]
+    fn others_within_counts_distinct_other_tags() {
+        let mut s = Survey::new();
+        s.add("A", Some("g"), &[100, 5_000]);
+        s.add("B", Some("g"), &[120]);
+        s.add("C", None, &[130, 140, 6_000]);
+        s.finish();
+        // A's change at 5000 is seen by no other tag; at 100, by its group.
+        assert_eq!(s.process_change("A", 100, 50, 5), Some(vec!["B", "C"]));
+        assert_eq!(s.process_change("A", 5_000, 50, 1), None);
+        assert_eq!(s.group_moved("C", 0, 200), None);
+        assert!(s.changed("C", 5_900, 6_100) && !s.changed("A", 5_900, 6_100));
+        assert_eq!(s.others_within("A", 0, 200), vec!["B", "C"]);
+        assert_eq!(s.others_within("B", 0, 200), vec!["A", "C"]);
+        assert!(s.others_within("A", 200, 4_000).is_empty());
+        assert_eq!(s.tags_with_changes(), 3);
+    }
+}

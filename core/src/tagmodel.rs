@@ -1,0 +1,592 @@
+//! A tag's state-space model as the cleaning steps use it: the default model
+//! chosen from the tag's ISA-5.1 measured-variable letter, the observation
+//! arrays built from a [`TagTable`] (faulty readings missing, uncertain
+//! readings with a larger variance, deadband knowledge for exception-reported
+//! tags), maximum-likelihood fitting, and the smoothed process value with its
+//! standard deviation.
+//!
+//! The steps share one fitted model per tag through the tag's report: the
+//! first step that fits writes `model`, `params` and `loglik` into
+//! [`TagReport`]; later steps rebuild the model from there
+//! ([`Fitted::from_report`]) instead of fitting again.
+
+use std::collections::BTreeMap;
+
+use crate::plugin::{TagReport, TagSettings};
+use crate::series::{Quality, Sampling, Status, TagTable};
+use crate::ssm::{self, FilterOptions, FitOptions, ModelSpec, Observations, SmootherOutput, StateSpace};
+
+/// The model a tag gets when the pipeline names none, from the first letter
+/// of its ISA-5.1 tag (the measured or initiating variable), with the reason.
+///
+/// | letter | variable | default |
+/// |---|---|---|
+/// | F flow, P pressure (incl. PD), T temperature, L level, D density, W weight/force, S speed | continuous process variables that wander and fluctuate around it | `local-level+arma(1,0)` |
+/// | A analysis, Q quantity, anything else | slow, sparsely sampled analysers | `local-level` |
+///
+/// (The letter meanings are ISA-5.1's; the choice of model per letter is
+/// tagwright's, common practice, no source.)
+pub fn default_model(tag: &str) -> (ModelSpec, String) {
+    let letter = tag.trim_start().chars().next().map(|c| c.to_ascii_uppercase());
+    let (spec, what) = match letter {
+        Some('F') => ("local-level+arma(1,0)", "flow"),
+        Some('P') => ("local-level+arma(1,0)", "pressure"),
+        Some('T') => ("local-level+arma(1,0)", "temperature"),
+        Some('L') => ("local-level+arma(1,0)", "level"),
+        Some('D') => ("local-level+arma(1,0)", "density"),
+        Some('W') => ("local-level+arma(1,0)", "weight"),
+        Some('S') => ("local-level+arma(1,0)", "speed"),
+        Some('A') => ("local-level", "analyser"),
+        _ => ("local-level", "unclassified"),
+    };
+    let parsed = spec.parse::<ModelSpec>().unwrap_or_else(|_| ModelSpec::local_level());
+    (parsed, format!("default for a {what} tag (ISA-5.1 letter {})", letter.unwrap_or('?')))
+}
+
+/// Observation arrays of one tag on its time grid.
+///
+/// The grid is the table's rows, plus, for an exception-reported tag, a
+/// pseudo-row at every scan time inside a quiet stretch (no stored sample):
+/// the source scanned there and found the value within ±deadband of the last
+/// stored reading, so the pseudo-observation is that reading with the extra
+/// variance deadband²/3 of a uniform error on ±deadband, multiplied by the
+/// number of scans in the stretch (they share one error, see the code).
+#[derive(Debug, Clone, Default)]
+pub struct TagObs {
+    /// Observation per grid point (NaN = missing).
+    pub y: Vec<f64>,
+    /// Time to the next grid point in nominal periods (last entry 1).
+    pub dt: Vec<f64>,
+    /// Multiplier of the observation variance per grid point.
+    pub w: Vec<f64>,
+    /// Absolute extra variance per grid point (deadband pseudo-observations);
+    /// folded into `w` by [`TagObs::set_noise`].
+    extra_var: Vec<f64>,
+    /// Base multiplier per grid point (uncertain quality, noisy readings).
+    base_w: Vec<f64>,
+    /// Grid time per point, µs UTC.
+    pub ts_us: Vec<i64>,
+    /// Table row of each grid point, or `None` for a pseudo-row.
+    pub row: Vec<Option<usize>>,
+}
+
+impl TagObs {
+    /// Builds the arrays. `use_row(i)` says whether table row `i` is an
+    /// observation (rows inserted in gaps, status `filled`, never are; on an
+    /// exception-reported tag they carry the deadband pseudo-observation).
+    /// `max_quiet_us` bounds a quiet stretch of an exception-reported tag
+    /// (longer ones are gaps: no pseudo-observations).
+    pub fn build(
+        table: &TagTable,
+        uncertain_factor: f64,
+        use_row: impl Fn(usize) -> bool,
+        max_quiet_us: i64,
+    ) -> TagObs {
+        let n = table.len();
+        let mut o = TagObs::default();
+        let period = table.period_us.max(1);
+        let deadband = match table.sampling {
+            Sampling::Exception { deadband } => Some(deadband),
+            Sampling::Regular => None,
+        };
+        let mut last_stored: Option<(i64, f64)> = None;
+        for i in 0..n {
+            let usable = use_row(i) && table.raw[i].is_finite();
+            let w = if table.quality[i] == Quality::Uncertain { uncertain_factor.max(1.0) } else { 1.0 };
+            if table.status[i] == Status::Filled {
+                // An inserted row: for an exception-reported tag inside a
+                // quiet stretch, the deadband pseudo-observation.
+                match (deadband, last_stored) {
+                    (Some(db), Some((t0, v))) if table.ts_us[i] - t0 <= max_quiet_us => {
+                        o.push(table.ts_us[i], v, 1.0, db * db / 3.0, Some(i))
+                    }
+                    _ => o.push(table.ts_us[i], f64::NAN, 1.0, 0.0, Some(i)),
+                }
+                continue;
+            }
+            o.push(table.ts_us[i], if usable { table.raw[i] } else { f64::NAN }, w, 0.0, Some(i));
+            last_stored = usable.then_some((table.ts_us[i], table.raw[i]));
+            if let (Some(db), Some(next)) = (deadband, table.ts_us.get(i + 1)) {
+                let gap = next - table.ts_us[i];
+                if gap > period && gap <= max_quiet_us {
+                    let mut t = table.ts_us[i] + period;
+                    while t < *next {
+                        let y = last_stored.map_or(f64::NAN, |(_, v)| v);
+                        o.push(t, y, 1.0, db * db / 3.0, None);
+                        t += period;
+                    }
+                }
+            }
+        }
+        // The pseudo-observations of one quiet stretch share one error (the
+        // value stayed inside one band), so together they carry about one
+        // observation's information: each gets the band variance times the
+        // number of scans in the stretch.
+        let mut k = 0;
+        while k < o.extra_var.len() {
+            if o.extra_var[k] > 0.0 {
+                let a = k;
+                while k < o.extra_var.len() && o.extra_var[k] > 0.0 {
+                    k += 1;
+                }
+                let len = (k - a) as f64;
+                o.extra_var[a..k].iter_mut().for_each(|v| *v *= len);
+            } else {
+                k += 1;
+            }
+        }
+        for k in 0..o.ts_us.len() {
+            o.dt.push(match o.ts_us.get(k + 1) {
+                Some(next) => ((next - o.ts_us[k]) as f64 / period as f64).max(1e-6),
+                None => 1.0,
+            });
+        }
+        o.w = o.base_w.clone();
+        o
+    }
+
+    fn push(&mut self, ts: i64, y: f64, w: f64, extra: f64, row: Option<usize>) {
+        self.ts_us.push(ts);
+        self.y.push(y);
+        self.base_w.push(w);
+        self.extra_var.push(extra);
+        self.row.push(row);
+    }
+
+    /// Number of grid points.
+    pub fn len(&self) -> usize {
+        self.y.len()
+    }
+
+    /// True when there is no grid point.
+    pub fn is_empty(&self) -> bool {
+        self.y.is_empty()
+    }
+
+    /// Number of observed grid points.
+    pub fn observed(&self) -> usize {
+        self.y.iter().filter(|v| !v.is_nan()).count()
+    }
+
+    /// Sets the variance multiplier of grid point `k` (e.g. a noisy reading).
+    pub fn set_base_weight(&mut self, k: usize, w: f64) {
+        self.base_w[k] = w;
+        self.w[k] = w;
+    }
+
+    /// Folds the absolute pseudo-observation variances into `w` for an
+    /// observation noise variance `h` (the model's). Call before each fit or
+    /// filter run when `h` changes.
+    pub fn set_noise(&mut self, h: f64) {
+        let h = h.max(1e-300);
+        for k in 0..self.y.len() {
+            self.w[k] = self.base_w[k] + self.extra_var[k] / h;
+        }
+    }
+
+    /// The arrays as the filter's input.
+    pub fn observations(&self) -> Observations<'_> {
+        Observations { y: &self.y, p: 1, dt: Some(&self.dt), h_scale: Some(&self.w) }
+    }
+
+    /// A subsample for fitting: `blocks` runs of consecutive grid points,
+    /// evenly spread over the window, with about `max_points` observed points
+    /// in all; the time between blocks is kept in `dt`, so the likelihood
+    /// lets the state evolve over the skipped time exactly. `None` when the
+    /// whole window has no more than `max_points` observations.
+    pub fn subsample(&self, max_points: usize, blocks: usize) -> Option<TagObs> {
+        let observed = self.observed();
+        if observed <= max_points || blocks == 0 {
+            return None;
+        }
+        let n = self.len();
+        let per_block = (max_points / blocks).max(16);
+        // Block length in grid points, scaled by the share of observed points.
+        let len = ((per_block as f64) * n as f64 / observed as f64).ceil() as usize;
+        let stride = n / blocks;
+        if len >= stride {
+            return None;
+        }
+        let mut o = TagObs::default();
+        for b in 0..blocks {
+            let start = b * stride + (stride - len) / 2;
+            for k in start..start + len {
+                o.push(self.ts_us[k], self.y[k], self.base_w[k], self.extra_var[k], self.row[k]);
+                o.w.push(self.w[k]);
+                // Time to the next kept point: within a block one step;
+                // at a block's end, everything up to the next block.
+                let next = if k + 1 < start + len { k + 1 } else { ((b + 1) * stride + (stride - len) / 2).min(n) };
+                o.dt.push(if next < n { self.dt[k..next].iter().sum::<f64>().max(1e-6) } else { 1.0 });
+            }
+        }
+        Some(o)
+    }
+
+    /// Marks grid point `k` missing.
+    pub fn drop_point(&mut self, k: usize) {
+        self.y[k] = f64::NAN;
+    }
+}
+
+/// A fitted (or given) model of one tag.
+#[derive(Debug, Clone)]
+pub struct Fitted {
+    pub spec: ModelSpec,
+    pub names: Vec<String>,
+    pub params: Vec<f64>,
+    pub loglik: f64,
+    pub converged: bool,
+    pub model: StateSpace,
+}
+
+/// Why a tag could not be modelled.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[error("{0}")]
+pub struct ModelError(pub String);
+
+impl Fitted {
+    /// Fits `spec` by maximum likelihood on the observations (deadband
+    /// pseudo-observation variances folded in at the noise level of the
+    /// start, then once more at the fitted level).
+    pub fn fit(spec: &ModelSpec, obs: &mut TagObs, start: Option<Vec<f64>>) -> Result<Fitted, ModelError> {
+        Self::fit_at_most(spec, obs, start, usize::MAX)
+    }
+
+    /// [`Fitted::fit`] on at most `max_points` observations: a longer window
+    /// is fitted on [`TagObs::subsample`] (8 blocks), and the deadband
+    /// variances of the whole window are then set at the fitted noise level.
+    pub fn fit_at_most(
+        spec: &ModelSpec,
+        obs: &mut TagObs,
+        start: Option<Vec<f64>>,
+        max_points: usize,
+    ) -> Result<Fitted, ModelError> {
+        match obs.subsample(max_points, 8) {
+            Some(mut sub) => {
+                let f = Self::fit_all(spec, &mut sub, start)?;
+                obs.set_noise(f.obs_noise());
+                Ok(f)
+            }
+            None => Self::fit_all(spec, obs, start),
+        }
+    }
+
+    fn fit_all(spec: &ModelSpec, obs: &mut TagObs, start: Option<Vec<f64>>) -> Result<Fitted, ModelError> {
+        let n_obs = obs.observed();
+        let k = spec.param_names().len();
+        if n_obs < (k + spec.n_diffuse() + 2).max(8) {
+            return Err(ModelError(format!(
+                "too few usable readings ({n_obs}) to fit {spec} ({k} parameters); give the parameters or use a smaller model"
+            )));
+        }
+        let has_extra = obs.extra_var.iter().any(|&v| v > 0.0);
+        let h0 = start.as_ref().and_then(|p| obs_noise(spec, p)).unwrap_or_else(|| rough_noise(&obs.y));
+        obs.set_noise(h0);
+        let opts = FitOptions { max_iter: 150, std_errors: false, start, ..FitOptions::default() };
+        let mut res = ssm::fit(spec, &obs.observations(), &opts).map_err(|e| ModelError(e.to_string()))?;
+        if has_extra {
+            if let Some(h) = obs_noise(spec, &res.params) {
+                obs.set_noise(h);
+                let opts = FitOptions { start: Some(res.params.clone()), ..opts };
+                res = ssm::fit(spec, &obs.observations(), &opts).map_err(|e| ModelError(e.to_string()))?;
+                if let Some(h) = obs_noise(spec, &res.params) {
+                    obs.set_noise(h);
+                }
+            }
+        }
+        let model = spec.build(&res.params).map_err(|e| ModelError(e.to_string()))?;
+        Ok(Fitted {
+            spec: spec.clone(),
+            names: res.param_names,
+            params: res.params,
+            loglik: res.loglik,
+            converged: res.converged,
+            model,
+        })
+    }
+
+    /// A model with given parameters (by name; every parameter must be given).
+    pub fn given(spec: &ModelSpec, by_name: &BTreeMap<String, f64>) -> Result<Fitted, ModelError> {
+        let names = spec.param_names();
+        let mut params = Vec::with_capacity(names.len());
+        for n in &names {
+            match by_name.get(n) {
+                Some(&v) => params.push(v),
+                None => {
+                    return Err(ModelError(format!(
+                        "parameter `{n}` of {spec} is not given (needed: {})",
+                        names.join(", ")
+                    )))
+                }
+            }
+        }
+        let model = spec.build(&params).map_err(|e| ModelError(e.to_string()))?;
+        Ok(Fitted { spec: spec.clone(), names, params, loglik: f64::NAN, converged: true, model })
+    }
+
+    /// The model an earlier step wrote into the report, if any.
+    pub fn from_report(report: &TagReport) -> Option<Fitted> {
+        let spec: ModelSpec = report.model.as_deref()?.parse().ok()?;
+        let mut f = Fitted::given(&spec, &report.params).ok()?;
+        f.loglik = report.loglik.unwrap_or(f64::NAN);
+        Some(f)
+    }
+
+    /// Writes the model into the report (model, params, loglik).
+    pub fn to_report(&self, report: &mut TagReport) {
+        report.model = Some(self.spec.to_string());
+        report.params = self.names.iter().cloned().zip(self.params.iter().copied()).collect();
+        report.loglik = self.loglik.is_finite().then_some(self.loglik);
+    }
+
+    /// Observation noise variance h (0 for a model without noise).
+    pub fn obs_noise(&self) -> f64 {
+        obs_noise(&self.spec, &self.params).unwrap_or(0.0)
+    }
+
+    /// Log-likelihood of the observations under this model.
+    pub fn loglik_of(&self, obs: &TagObs) -> Result<f64, ModelError> {
+        ssm::filter(&self.model, &obs.observations(), &FilterOptions::loglik_only())
+            .map(|f| f.loglik)
+            .map_err(|e| ModelError(e.to_string()))
+    }
+
+    /// Smoothed process value (the signal Z a_t + d, without observation
+    /// noise) and its standard deviation at every grid point.
+    pub fn smooth(&self, obs: &TagObs, keep_aux: bool) -> Result<Smoothed, ModelError> {
+        self.smooth_inner(obs, keep_aux, None)
+    }
+
+    /// [`Fitted::smooth`] plus, at every grid point where `y_all` has a
+    /// reading, the standardised deletion residual: the reading against the
+    /// smoothed estimate from all *other* observations, divided by its
+    /// standard deviation. For an observed point it is u_t / sqrt(D_t) with
+    /// u_t = (v_t - k_t' r_t) / F_t and D_t = 1/F_t + k_t' N_t k_t / F_t^2
+    /// (the smoothed observation disturbance of DK 2012 §4.5.3 in univariate
+    /// form; its square is the test statistic for an additive outlier, de
+    /// Jong & Penzer 1998); for a point left out of `obs` it is
+    /// (y - signal) / sqrt(Var(signal) + h w). Defined with or without
+    /// observation noise; NaN inside the diffuse start.
+    pub fn smooth_with_outliers(&self, obs: &TagObs, y_all: &[f64]) -> Result<Smoothed, ModelError> {
+        self.smooth_inner(obs, true, Some(y_all))
+    }
+
+    fn smooth_inner(&self, obs: &TagObs, keep_aux: bool, y_all: Option<&[f64]>) -> Result<Smoothed, ModelError> {
+        let o = obs.observations();
+        let filt = ssm::filter(&self.model, &o, &FilterOptions::default()).map_err(|e| ModelError(e.to_string()))?;
+        let mut sm = SmootherOutput { keep_aux, ..Default::default() };
+        ssm::smooth_into(&self.model, &o, &filt, &mut sm);
+        let n = obs.len();
+        let mut mean = Vec::with_capacity(n);
+        let mut sd = Vec::with_capacity(n);
+        for t in 0..n {
+            mean.push(sm.signal(&self.model, t, 0));
+            sd.push(sm.signal_var(&self.model, t, 0).sqrt());
+        }
+        let outlier = match y_all {
+            Some(y_all) => self.deletion_residuals(obs, &filt, &sm, &mean, &sd, y_all),
+            None => Vec::new(),
+        };
+        Ok(Smoothed { mean, sd, smoother: sm, diffuse_end: filt.diffuse_end, outlier })
+    }
+
+    fn deletion_residuals(
+        &self,
+        obs: &TagObs,
+        filt: &ssm::FilterOutput,
+        sm: &SmootherOutput,
+        mean: &[f64],
+        sd: &[f64],
+        y_all: &[f64],
+    ) -> Vec<f64> {
+        let n = obs.len();
+        let m = self.model.state_dim();
+        let h = self.model.h[0];
+        let mut out = vec![f64::NAN; n];
+        let mut sys = self.model.step_system();
+        let mut cur_dt = 1.0;
+        let mut rb = vec![0.0; m];
+        let mut nb = vec![0.0; m * m];
+        let mut tmp = vec![0.0; m * m];
+        for t in filt.diffuse_end..n {
+            let Some(&y) = y_all.get(t) else { break };
+            if !y.is_finite() {
+                continue;
+            }
+            if filt.kind.get(t) != Some(&ssm::filter::ElemKind::Regular) {
+                let var = sd[t] * sd[t] + h * obs.w[t];
+                if var > 0.0 {
+                    out[t] = (y - mean[t]) / var.sqrt();
+                }
+                continue;
+            }
+            // r_t = T' r[t+1], N_t = T' N[t+1] T (zero at the end).
+            rb.iter_mut().for_each(|x| *x = 0.0);
+            nb.iter_mut().for_each(|x| *x = 0.0);
+            if t + 1 < n {
+                let dt = obs.dt[t];
+                if dt != cur_dt {
+                    self.model.system_for_step(dt, &mut sys);
+                    cur_dt = dt;
+                }
+                let tt = &sys.t;
+                let r1 = &sm.r[(t + 1) * m..(t + 2) * m];
+                let n1 = &sm.n_cum[(t + 1) * m * m..(t + 2) * m * m];
+                for i in 0..m {
+                    rb[i] = (0..m).map(|j| tt[(j, i)] * r1[j]).sum();
+                }
+                // tmp = N1 T (column-major N1).
+                for c in 0..m {
+                    for r in 0..m {
+                        tmp[c * m + r] = (0..m).map(|j| n1[j * m + r] * tt[(j, c)]).sum();
+                    }
+                }
+                for c in 0..m {
+                    for r in 0..m {
+                        nb[c * m + r] = (0..m).map(|j| tt[(j, r)] * tmp[c * m + j]).sum();
+                    }
+                }
+            }
+            let (v, f) = (filt.v[t], filt.f[t]);
+            let k = &filt.k[t * m..(t + 1) * m];
+            let kr: f64 = (0..m).map(|i| k[i] * rb[i]).sum();
+            let mut knk = 0.0;
+            for c in 0..m {
+                for r in 0..m {
+                    knk += k[r] * nb[c * m + r] * k[c];
+                }
+            }
+            let u = (v - kr) / f;
+            let d = 1.0 / f + knk / (f * f);
+            if d > 0.0 {
+                out[t] = u / d.sqrt();
+            }
+        }
+        out
+    }
+}
+
+/// Result of [`Fitted::smooth`].
+#[derive(Debug, Clone)]
+pub struct Smoothed {
+    pub mean: Vec<f64>,
+    pub sd: Vec<f64>,
+    /// The smoother's output (states, covariances, and with `keep_aux` the
+    /// cumulants for auxiliary residuals).
+    pub smoother: SmootherOutput,
+    /// First grid point after the diffuse phase.
+    pub diffuse_end: usize,
+    /// Standardised deletion residuals ([`Fitted::smooth_with_outliers`] only).
+    pub outlier: Vec<f64>,
+}
+
+/// The observation noise variance in a parameter vector of `spec`.
+fn obs_noise(spec: &ModelSpec, params: &[f64]) -> Option<f64> {
+    spec.param_names().iter().position(|n| n == "sigma2.obs").and_then(|i| params.get(i).copied())
+}
+
+/// A rough observation noise variance for a start: half the median squared
+/// first difference.
+fn rough_noise(y: &[f64]) -> f64 {
+    let mut d: Vec<f64> =
+        y.windows(2).filter(|w| w[0].is_finite() && w[1].is_finite()).map(|w| (w[1] - w[0]).powi(2)).collect();
+    if d.is_empty() {
+        return 1.0;
+    }
+    let mid = d.len() / 2;
+    d.select_nth_unstable_by(mid, f64::total_cmp);
+    (0.5 * d[mid]).max(1e-12)
+}
+
+/// The model of a tag: the settings' model or the default for its letter.
+pub fn model_for(tag: &str, settings: &TagSettings) -> (ModelSpec, String) {
+    match &settings.model {
+        Some(m) => (m.clone(), "from the pipeline".to_string()),
+        None => default_model(tag),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::series::{ReadCounts, TagSeries};
+
+    fn table(ts: Vec<i64>, v: Vec<f64>, sampling: Sampling) -> TagTable {
+        let n = ts.len();
+        let s = TagSeries {
+            tag: "LT-1".into(),
+            ts_us: ts,
+            values: v,
+            quality: vec![Quality::Good; n],
+            counts: ReadCounts::default(),
+        };
+        TagTable::from_series(&s, 10, sampling)
+    }
+
+    #[test]
+    fn default_models_follow_the_isa_letter() {
+        assert_eq!(default_model("FT-3101A.PV").0.to_string(), "local-level+arma(1,0)");
+        assert_eq!(default_model("PDT-3217.PV").0.to_string(), "local-level+arma(1,0)");
+        assert_eq!(default_model("AT-3130.PV").0.to_string(), "local-level");
+        assert!(default_model("XY-1").1.contains("unclassified"));
+    }
+
+    #[test]
+    fn exception_tags_get_pseudo_observations_in_quiet_stretches() {
+        let t = table(vec![0, 10, 50, 60], vec![1.0, 2.0, 3.0, f64::NAN], Sampling::Exception { deadband: 0.5 });
+        let mut o = TagObs::build(&t, 4.0, |_| true, 1_000);
+        assert_eq!(o.ts_us, [0, 10, 20, 30, 40, 50, 60]);
+        assert_eq!(o.row, [Some(0), Some(1), None, None, None, Some(2), Some(3)]);
+        assert_eq!(&o.y[2..5], &[2.0, 2.0, 2.0]);
+        assert!(o.y[6].is_nan());
+        o.set_noise(0.25);
+        // w = 1 + 3 (0.5^2 / 3) / 0.25: three scans share the stretch.
+        assert!((o.w[3] - (1.0 + 3.0 * 0.25 / 3.0 / 0.25)).abs() < 1e-12);
+        assert_eq!(o.w[0], 1.0);
+        // A regular tag's gap is not filled with pseudo-observations.
+        let t = table(vec![0, 10, 50], vec![1.0, 2.0, 3.0], Sampling::Regular);
+        let o = TagObs::build(&t, 4.0, |_| true, 1_000);
+        assert_eq!(o.len(), 3);
+        assert_eq!(o.dt[1], 4.0);
+    }
+
+    #[test]
+    fn a_subsample_keeps_blocks_and_the_time_between_them() {
+        let t = table((0..1000).map(|i| i * 10).collect(), (0..1000).map(f64::from).collect(), Sampling::Regular);
+        let o = TagObs::build(&t, 4.0, |_| true, 0);
+        assert!(o.subsample(2000, 8).is_none());
+        let s = o.subsample(160, 8).unwrap();
+        assert_eq!(s.len(), 160);
+        // Blocks of 20 consecutive points, one per 125; the total time is kept
+        // from the first kept point to the last.
+        assert_eq!(s.dt[..19], [1.0; 19]);
+        assert_eq!(s.dt[19], 106.0);
+        assert_eq!(s.ts_us[20] - s.ts_us[19], 1060);
+        let span: f64 = s.dt[..159].iter().sum();
+        assert_eq!(span as i64 * 10, s.ts_us[159] - s.ts_us[0]);
+    }
+
+    #[test]
+    fn fitted_model_round_trips_through_the_report() {
+        let mut rng = crate::rng::Rng::new(3);
+        let mut level = 10.0;
+        let v: Vec<f64> = (0..400)
+            .map(|_| {
+                level += 0.1 * rng.normal();
+                level + 0.3 * rng.normal()
+            })
+            .collect();
+        let t = table((0..400).map(|i| i * 10).collect(), v, Sampling::Regular);
+        let mut o = TagObs::build(&t, 4.0, |_| true, 0);
+        let spec: ModelSpec = "local-level".parse().unwrap();
+        let f = Fitted::fit(&spec, &mut o, None).unwrap();
+        // Simulated with sigma2.obs = 0.09, sigma2.level = 0.01.
+        assert!((f.obs_noise() - 0.09).abs() < 0.03, "{:?}", f.params);
+        let mut rep = TagReport::default();
+        f.to_report(&mut rep);
+        let g = Fitted::from_report(&rep).unwrap();
+        assert_eq!(g.params, f.params);
+        let s = g.smooth(&o, false).unwrap();
+        assert!(s.sd.iter().all(|&x| x > 0.0 && x < 0.3));
+    }
+}
