@@ -70,7 +70,11 @@ pub struct DemoArgs {
 
 /// The registry of every step this binary knows.
 pub fn registry() -> Registry {
-    Registry::with_builtins()
+    let mut reg = Registry::with_builtins();
+    tagwright_faults::register(&mut reg);
+    tagwright_drift::register(&mut reg);
+    tagwright_fill::register(&mut reg);
+    reg
 }
 
 fn load(path: &Path, registry: &Registry) -> Result<PipelineSpec, Failure> {

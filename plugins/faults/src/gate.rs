@@ -1,0 +1,354 @@
+//! The online pass: a Kalman filter that tests each reading before it uses
+//! it. A reading whose standardised innovation e_t = v_t / sqrt(F_t)
+//! exceeds the spike bound is rejected and does not update the filter. There
+//! is no gate lock-out: when `shift_run` consecutive readings are rejected
+//! on the same side, the run is re-examined as a possible level shift: the
+//! filter goes back to the first of them, adds the squared innovation there
+//! to the level's variance (an intervention, Harvey 1989 §7.6; de Jong &
+//! Penzer 1998) and carries on, so the new level is learnt instead of every
+//! later reading being rejected.
+//!
+//! Fixed-size nalgebra matrices for up to 6 states; the steady state (gain
+//! unchanged from one reading to the next) is detected and then only the
+//! mean is propagated, as in the batch filter.
+
+use nalgebra::{SMatrix, SVector};
+use tagwright::ssm::StateSpace;
+use tagwright::tagmodel::TagObs;
+
+/// Largest state dimension the online pass supports.
+pub const MAX_STATES: usize = 6;
+
+/// What the online pass found.
+#[derive(Debug, Clone, Default)]
+pub struct GateOutput {
+    /// Standardised innovation per grid point (NaN where not observed or
+    /// inside the diffuse start).
+    pub e: Vec<f64>,
+    /// Innovation per grid point.
+    pub v: Vec<f64>,
+    /// Rejected as a spike by the gate.
+    pub gated: Vec<bool>,
+    /// Level shifts found by re-examining a run: (grid point, innovation, e).
+    pub shifts: Vec<(usize, f64, f64)>,
+    /// Innovation variance in the steady state (or the median F), for the
+    /// stuck test.
+    pub f_typical: f64,
+}
+
+/// Options of the pass.
+#[derive(Debug, Clone, Copy)]
+pub struct GateOptions {
+    /// Spike bound on |e|.
+    pub spike: f64,
+    /// Consecutive same-side rejections re-examined as a level shift.
+    pub shift_run: usize,
+    /// Index of the level state (for interventions), if the model has one.
+    pub level: Option<usize>,
+    /// Points that are never gated (pseudo-observations).
+    pub min_warm: usize,
+}
+
+/// Runs the online pass on `obs` with `model`; `can_gate(k)` says whether
+/// grid point k may be rejected (pseudo-observations may not).
+pub fn run(model: &StateSpace, obs: &TagObs, opts: &GateOptions, can_gate: &dyn Fn(usize) -> bool) -> GateOutput {
+    match model.state_dim() {
+        1 => run_m::<1>(model, obs, opts, can_gate),
+        2 => run_m::<2>(model, obs, opts, can_gate),
+        3 => run_m::<3>(model, obs, opts, can_gate),
+        4 => run_m::<4>(model, obs, opts, can_gate),
+        5 => run_m::<5>(model, obs, opts, can_gate),
+        _ => run_m::<6>(model, obs, opts, can_gate),
+    }
+}
+
+fn mat<const M: usize>(d: &nalgebra::DMatrix<f64>) -> SMatrix<f64, M, M> {
+    SMatrix::<f64, M, M>::from_fn(|i, j| d[(i, j)])
+}
+
+fn run_m<const M: usize>(
+    model: &StateSpace,
+    obs: &TagObs,
+    opts: &GateOptions,
+    can_gate: &dyn Fn(usize) -> bool,
+) -> GateOutput {
+    let n = obs.len();
+    let mut out =
+        GateOutput { e: vec![f64::NAN; n], v: vec![f64::NAN; n], gated: vec![false; n], ..Default::default() };
+    if model.state_dim() != M || n == 0 {
+        return out;
+    }
+    let mut sys = model.step_system();
+    let t1: SMatrix<f64, M, M> = mat(&sys.t);
+    let q1: SMatrix<f64, M, M> = mat(&sys.rqr);
+    let c: SVector<f64, M> = SVector::from_fn(|i, _| model.c[i]);
+    let z: SVector<f64, M> = SVector::from_fn(|i, _| model.z[(0, i)]);
+    let d = model.d[0];
+    let h = model.h[0];
+    // Diffuse states start with a variance far above anything in the data.
+    let spread = {
+        let ys: Vec<f64> = obs.y.iter().copied().filter(|v| v.is_finite()).take(1000).collect();
+        let mean = ys.iter().sum::<f64>() / ys.len().max(1) as f64;
+        ys.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / ys.len().max(1) as f64
+    };
+    let kappa = 1e6 * (spread + h + 1.0);
+    let mut a: SVector<f64, M> = SVector::from_fn(|i, _| model.a1[i]);
+    let mut p: SMatrix<f64, M, M> = mat::<M>(&model.p1_star) + mat::<M>(&model.p1_inf) * kappa;
+    let n_diffuse = model.n_diffuse();
+
+    let mut updates = 0usize;
+    let mut run: Vec<(usize, f64)> = Vec::new();
+    let mut snapshot: Option<(usize, SVector<f64, M>, SMatrix<f64, M, M>)> = None;
+    let mut force_accept: Option<usize> = None;
+    let mut f_seen: Vec<f64> = Vec::new();
+    // Steady state: (gain, F, predicted P).
+    let mut steady: Option<(SVector<f64, M>, f64, SMatrix<f64, M, M>)> = None;
+    let mut prev_p: Option<SMatrix<f64, M, M>> = None;
+
+    let mut k = 0;
+    let mut predicted_for = usize::MAX;
+    while k < n {
+        // Prediction from k-1 to k (a and p hold the filtered values at k-1).
+        if k > 0 && predicted_for != k {
+            let dt = obs.dt[k - 1];
+            if dt == 1.0 {
+                a = t1 * a + c;
+                if steady.is_none() {
+                    p = t1 * p * t1.transpose() + q1;
+                }
+            } else {
+                if let Some((_, _, pp)) = steady.take() {
+                    p = pp;
+                    // p held the steady predicted covariance; go back to the filtered one.
+                    p = filtered_from_predicted(&p, &z, h);
+                }
+                model.system_for_step(dt, &mut sys);
+                let tk: SMatrix<f64, M, M> = mat(&sys.t);
+                let qk: SMatrix<f64, M, M> = mat(&sys.rqr);
+                a = tk * a + c;
+                p = tk * p * tk.transpose() + qk;
+            }
+        }
+        predicted_for = k;
+        let y = obs.y[k];
+        let w = obs.w[k];
+        if !y.is_finite() {
+            if let Some((_, _, pp)) = steady.take() {
+                p = pp;
+            }
+            prev_p = None;
+            k += 1;
+            continue;
+        }
+        if w != 1.0 {
+            if let Some((_, _, pp)) = steady.take() {
+                p = pp;
+            }
+        }
+        let (f, gain) = match &steady {
+            Some((g, f, _)) => (*f, *g),
+            None => {
+                let pz = p * z;
+                let f = z.dot(&pz) + h * w;
+                (f, pz / f)
+            }
+        };
+        let v = y - z.dot(&a) - d;
+        let e = v / f.sqrt();
+        let warm = updates >= n_diffuse + opts.min_warm;
+        if warm {
+            out.e[k] = e;
+            out.v[k] = v;
+            if f_seen.len() < 4096 {
+                f_seen.push(f);
+            }
+        }
+        let reject = warm && e.abs() > opts.spike && can_gate(k) && force_accept != Some(k);
+        if reject {
+            out.gated[k] = true;
+            let sign = e.signum();
+            if run.is_empty() {
+                let pp = match &steady {
+                    Some((_, _, pp)) => *pp,
+                    None => p,
+                };
+                snapshot = Some((k, a, pp));
+            }
+            if run.iter().all(|&(_, s)| s == sign) {
+                run.push((k, sign));
+            } else {
+                run.clear();
+                run.push((k, sign));
+                let pp = match &steady {
+                    Some((_, _, pp)) => *pp,
+                    None => p,
+                };
+                snapshot = Some((k, a, pp));
+            }
+            if run.len() >= opts.shift_run.max(1) {
+                if let (Some(level), Some((k0, a0, p0))) = (opts.level, snapshot.take()) {
+                    // Re-examine: a level shift at k0. Undo the rejections and
+                    // restart from k0 with the level's variance widened.
+                    for &(j, _) in &run {
+                        out.gated[j] = false;
+                    }
+                    let v0 = out.v[k0];
+                    out.shifts.push((k0, v0, out.e[k0]));
+                    a = a0;
+                    p = p0;
+                    p[(level, level)] += v0 * v0;
+                    steady = None;
+                    prev_p = None;
+                    run.clear();
+                    force_accept = Some(k0);
+                    predicted_for = k0;
+                    k = k0;
+                    continue;
+                }
+            }
+            // A rejected reading is not used: the prediction carries on.
+            if let Some((_, _, pp)) = steady.take() {
+                p = pp;
+            }
+            prev_p = None;
+            k += 1;
+            continue;
+        }
+        run.clear();
+        snapshot = None;
+        // Update.
+        match steady {
+            Some((g, _, _)) => a += g * v,
+            None => {
+                let p_pred = p;
+                a += gain * v;
+                p -= gain * gain.transpose() * f;
+                p = (p + p.transpose()) * 0.5;
+                updates += 1;
+                if dt_regular(obs, k) && w == 1.0 {
+                    if let Some(prev) = prev_p {
+                        let scale = p_pred.amax().max(1e-300);
+                        if (p_pred - prev).amax() <= 1e-10 * scale {
+                            steady = Some((gain, f, p_pred));
+                        }
+                    }
+                    prev_p = Some(p_pred);
+                } else {
+                    prev_p = None;
+                }
+            }
+        }
+        k += 1;
+    }
+    out.f_typical = match steady {
+        Some((_, f, _)) => f,
+        None => {
+            if f_seen.is_empty() {
+                f64::NAN
+            } else {
+                let mid = f_seen.len() / 2;
+                f_seen.select_nth_unstable_by(mid, f64::total_cmp);
+                f_seen[mid]
+            }
+        }
+    };
+    out
+}
+
+/// True when the step into k and out of k are one period.
+fn dt_regular(obs: &TagObs, k: usize) -> bool {
+    obs.dt[k] == 1.0 && (k == 0 || obs.dt[k - 1] == 1.0)
+}
+
+/// The filtered covariance of a steady state given its predicted one:
+/// P - P z z' P / (z' P z + h).
+fn filtered_from_predicted<const M: usize>(p: &SMatrix<f64, M, M>, z: &SVector<f64, M>, h: f64) -> SMatrix<f64, M, M> {
+    let pz = p * z;
+    let f = z.dot(&pz) + h;
+    p - pz * pz.transpose() / f
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use tagwright::rng::Rng;
+    use tagwright::series::{Quality, ReadCounts, Sampling, TagSeries, TagTable};
+    use tagwright::ssm::ModelSpec;
+
+    fn obs(values: Vec<f64>) -> TagObs {
+        let n = values.len();
+        let s = TagSeries {
+            tag: "FT-1".into(),
+            ts_us: (0..n as i64).collect(),
+            values,
+            quality: vec![Quality::Good; n],
+            counts: ReadCounts::default(),
+        };
+        let t = TagTable::from_series(&s, 1, Sampling::Regular);
+        TagObs::build(&t, 4.0, |_| true, 0)
+    }
+
+    fn local_level(h: f64, q: f64) -> StateSpace {
+        "local-level".parse::<ModelSpec>().unwrap().build(&[h, q]).unwrap()
+    }
+
+    #[test]
+    fn a_spike_is_gated_and_the_filter_is_not_pulled() {
+        let mut rng = Rng::new(1);
+        let mut y: Vec<f64> = (0..500).map(|_| 10.0 + 0.1 * rng.normal()).collect();
+        y[300] += 5.0;
+        let o = obs(y);
+        let g = run(
+            &local_level(0.01, 1e-5),
+            &o,
+            &GateOptions { spike: 5.0, shift_run: 3, level: Some(0), min_warm: 2 },
+            &|_| true,
+        );
+        assert!(g.gated[300]);
+        assert_eq!(g.gated.iter().filter(|&&x| x).count(), 1);
+        // The reading after the spike is judged against the unpulled level.
+        assert!(g.e[301].abs() < 4.0);
+        assert!(g.shifts.is_empty());
+    }
+
+    #[test]
+    fn a_run_of_rejections_becomes_a_level_shift() {
+        let mut rng = Rng::new(2);
+        let y: Vec<f64> = (0..600).map(|t| if t < 400 { 10.0 } else { 12.0 } + 0.1 * rng.normal()).collect();
+        let o = obs(y);
+        let g = run(
+            &local_level(0.01, 1e-5),
+            &o,
+            &GateOptions { spike: 5.0, shift_run: 3, level: Some(0), min_warm: 2 },
+            &|_| true,
+        );
+        assert_eq!(g.shifts.len(), 1, "{:?}", g.shifts);
+        assert_eq!(g.shifts[0].0, 400);
+        assert!(g.shifts[0].1 > 1.5);
+        // No reading after the shift stays rejected.
+        assert_eq!(g.gated.iter().filter(|&&x| x).count(), 0);
+        assert!(g.e[450].abs() < 4.0);
+    }
+
+    #[test]
+    fn steady_state_gives_the_same_innovations_as_the_batch_filter() {
+        let mut rng = Rng::new(3);
+        let mut level = 0.0;
+        let mut y: Vec<f64> = (0..3000)
+            .map(|_| {
+                level += 0.05 * rng.normal();
+                level + 0.2 * rng.normal()
+            })
+            .collect();
+        y[1000] = f64::NAN;
+        let o = obs(y);
+        let spec: ModelSpec = "local-level+arma(1,0)".parse().unwrap();
+        let model = spec.build(&[0.04, 0.0025, 0.7, 0.01]).unwrap();
+        let g = run(&model, &o, &GateOptions { spike: 50.0, shift_run: 3, level: Some(0), min_warm: 2 }, &|_| true);
+        let f = tagwright::ssm::filter(&model, &o.observations(), &Default::default()).unwrap();
+        for t in [50, 999, 1001, 2500, 2999] {
+            let e = f.standardised(t, 0);
+            assert!((g.e[t] - e).abs() < 1e-4, "t={t}: online {} batch {e}", g.e[t]);
+        }
+    }
+}

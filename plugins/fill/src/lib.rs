@@ -1,0 +1,230 @@
+//! The `fill` step: gaps filled and faulty readings replaced by the
+//! smoothed process value, with its standard deviation.
+//!
+//! - Rows are inserted inside gaps at the tag's nominal period, counted on
+//!   from the last sample before the gap (status `filled`, no fault). A gap
+//!   of a regularly sampled tag is a spacing above 1.5 periods; on an
+//!   exception-reported tag every unstored scan is inserted, and the
+//!   estimate there uses the deadband (the value stayed within ±deadband of
+//!   the last stored reading) for up to `max_quiet` after it.
+//! - Readings an earlier step rejected get the estimate (status `replaced`,
+//!   fault and statistic kept). Readings rejected as `noise` are used as
+//!   observations with their variance multiplied by the noise factor the
+//!   `faults` step measured.
+//! - The estimate is the fixed-interval smoother's mean of the process value
+//!   (Durbin & Koopman 2012, §4.4; Rauch, Tung & Striebel 1965) and `std` its
+//!   standard deviation; every row of the tag gets `std`.
+//! - A gap or a run of rejected readings longer than `max_gap` gets no
+//!   estimate: inserted rows have a null value, rejected readings stay
+//!   `rejected`.
+//! - Filled values are never observations: no fit or test uses them.
+//!
+//! The model is the one an earlier step fitted (read back from the tag's
+//! report), else the pipeline's or the default, fitted here.
+
+use std::collections::BTreeMap;
+use std::sync::Arc;
+
+use serde::Deserialize;
+use serde_json::json;
+use tagwright::plugin::{parse_params, Registry, Step, StepContext, StepError, TagWork};
+use tagwright::series::{Fault, Sampling, Status};
+use tagwright::tagmodel::{model_for, Fitted, TagObs};
+
+/// Registers the step.
+pub fn register(reg: &mut Registry) {
+    reg.register("fill", make, "fill gaps and replace rejected readings with the smoothed value and its std");
+}
+
+/// Parameters of the `fill` step (YAML keys).
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct FillParams {
+    /// Longest gap (or run of rejected readings) given an estimate, as a
+    /// duration. Default `30m`.
+    pub max_gap: String,
+    /// Replace rejected readings with the estimate. Default true.
+    pub replace: bool,
+    /// Longest quiet stretch of an exception-reported tag read as "within
+    /// the deadband", as a duration. Default `1h`.
+    pub max_quiet: String,
+    /// Model parameters by name, used as given (no fit) when no earlier step
+    /// fitted the tag.
+    pub params: Option<BTreeMap<String, f64>>,
+    /// Largest number of readings a fit here uses (see the `faults` step). Default 4096.
+    pub fit_points: usize,
+}
+
+impl Default for FillParams {
+    fn default() -> Self {
+        FillParams { max_gap: "30m".into(), replace: true, max_quiet: "1h".into(), params: None, fit_points: 4096 }
+    }
+}
+
+/// The step.
+#[derive(Debug, Clone)]
+pub struct FillStep {
+    pub params: FillParams,
+    pub max_gap_us: i64,
+    pub max_quiet_us: i64,
+}
+
+fn make(params: &serde_json::Value) -> Result<Arc<dyn Step>, String> {
+    let p: FillParams = parse_params("fill", params)?;
+    let dur =
+        |k: &str, v: &str| tagwright::pipeline::parse_duration_us(v).map_err(|e| format!("step `fill`: {k}: {e}"));
+    let max_gap_us = dur("max_gap", &p.max_gap)?;
+    let max_quiet_us = dur("max_quiet", &p.max_quiet)?;
+    if max_gap_us <= 0 {
+        return Err("step `fill`: max_gap must be longer than zero".into());
+    }
+    Ok(Arc::new(FillStep { params: p, max_gap_us, max_quiet_us }))
+}
+
+impl Step for FillStep {
+    fn name(&self) -> &str {
+        "fill"
+    }
+
+    fn apply(&self, tags: &mut [TagWork], ctx: &StepContext) -> Result<(), StepError> {
+        for w in tags.iter_mut() {
+            self.apply_one(w, ctx.index)
+                .map_err(|m| StepError::Failed { step: "fill".into(), message: format!("tag {}: {m}", w.table.tag) })?;
+        }
+        Ok(())
+    }
+}
+
+impl FillStep {
+    fn apply_one(&self, work: &mut TagWork, step: u16) -> Result<(), String> {
+        let period = work.table.period_us.max(1);
+        let exception = matches!(work.table.sampling, Sampling::Exception { .. });
+        // 1. Insert rows in the gaps.
+        let mut inserts = Vec::new();
+        {
+            let ts = &work.table.ts_us;
+            for w in ts.windows(2) {
+                let gap = w[1] - w[0];
+                let is_gap = if exception { gap > period } else { gap * 2 > period * 3 };
+                if is_gap {
+                    let mut t = w[0] + period;
+                    while t < w[1] {
+                        inserts.push(t);
+                        t += period;
+                    }
+                }
+            }
+        }
+        work.table.insert_rows(&inserts, step);
+        let table = &work.table;
+        let n = table.len();
+        if n == 0 {
+            return Ok(());
+        }
+
+        // 2. The model.
+        let usable = |i: usize| {
+            table.raw[i].is_finite()
+                && match table.status[i] {
+                    Status::Ok => true,
+                    Status::Rejected => table.fault[i] == Some(Fault::Noise),
+                    _ => false,
+                }
+        };
+        let mut obs = TagObs::build(table, work.settings.uncertain_factor, usable, self.max_quiet_us);
+        for k in 0..obs.len() {
+            if let Some(i) = obs.row[k] {
+                if table.fault[i] == Some(Fault::Noise) && table.stat[i].is_finite() {
+                    let w = obs.w[k] * table.stat[i].max(1.0);
+                    obs.set_base_weight(k, w);
+                }
+            }
+        }
+        let fitted = match Fitted::from_report(&work.report) {
+            Some(f) => f,
+            None => {
+                let (spec, _) = model_for(&table.tag, &work.settings);
+                if obs.observed() < 8 {
+                    work.report.notes.push(format!("fill: only {} usable readings; nothing filled", obs.observed()));
+                    return Ok(());
+                }
+                let f = match &self.params.params {
+                    Some(given) => Fitted::given(&spec, given).map_err(|e| e.to_string())?,
+                    None => Fitted::fit_at_most(&spec, &mut obs, None, self.params.fit_points.max(64))
+                        .map_err(|e| e.to_string())?,
+                };
+                f.to_report(&mut work.report);
+                f
+            }
+        };
+        obs.set_noise(fitted.obs_noise());
+        let sm = fitted.smooth(&obs, false).map_err(|e| e.to_string())?;
+
+        // 3. Lengths of the runs without an observation (gaps and rejected runs).
+        let mut hole_len = vec![0i64; n];
+        let observed_row: Vec<bool> = {
+            let mut v = vec![false; n];
+            for k in 0..obs.len() {
+                if let Some(i) = obs.row[k] {
+                    v[i] = obs.y[k].is_finite();
+                }
+            }
+            v
+        };
+        let mut i = 0;
+        while i < n {
+            if observed_row[i] {
+                i += 1;
+                continue;
+            }
+            let a = i;
+            while i < n && !observed_row[i] {
+                i += 1;
+            }
+            let before = if a > 0 { table.ts_us[a - 1] } else { table.ts_us[a] - period };
+            let after = if i < n { table.ts_us[i] } else { table.ts_us[n - 1] + period };
+            let len = after - before - period;
+            hole_len[a..i].iter_mut().for_each(|l| *l = len);
+        }
+
+        // 4. Write the estimates.
+        let t = &mut work.table;
+        let (mut filled, mut replaced, mut null_rows) = (0usize, 0usize, 0usize);
+        for k in 0..obs.len() {
+            let Some(i) = obs.row[k] else { continue };
+            let (mean, sd) = (sm.mean[k], sm.sd[k]);
+            t.std[i] = sd;
+            let short = hole_len[i] <= self.max_gap_us;
+            match t.status[i] {
+                Status::Filled => {
+                    if short && mean.is_finite() {
+                        t.value[i] = mean;
+                        filled += 1;
+                    } else {
+                        t.value[i] = f64::NAN;
+                        t.std[i] = f64::NAN;
+                        null_rows += 1;
+                    }
+                }
+                Status::Rejected if self.params.replace && (short || t.fault[i] == Some(Fault::Noise)) => {
+                    if mean.is_finite() {
+                        t.status[i] = Status::Replaced;
+                        t.value[i] = mean;
+                        replaced += 1;
+                    }
+                }
+                Status::Rejected => t.std[i] = f64::NAN,
+                _ => {}
+            }
+        }
+        work.report.extra.insert(
+            "fill".into(),
+            json!({"rows_inserted": inserts.len(), "filled": filled, "replaced": replaced, "no_estimate": null_rows,
+                   "max_gap_s": self.max_gap_us as f64 / 1e6}),
+        );
+        Ok(())
+    }
+}
+
+#[cfg(test)]
+mod tests;

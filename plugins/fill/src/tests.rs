@@ -1,0 +1,148 @@
+use std::sync::Arc;
+
+use tagwright::plugin::{Registry, StepContext, TagSettings, TagWork};
+use tagwright::rng::Rng;
+use tagwright::series::{Fault, Quality, ReadCounts, Sampling, Status, TagSeries, TagTable};
+
+use super::*;
+
+const PERIOD: i64 = 5_000_000;
+
+fn work(ts: Vec<i64>, values: Vec<f64>, sampling: Sampling, model: &str) -> TagWork {
+    let n = values.len();
+    let s = TagSeries {
+        tag: "TT-1.PV".into(),
+        ts_us: ts,
+        values,
+        quality: vec![Quality::Good; n],
+        counts: ReadCounts::default(),
+    };
+    TagWork {
+        table: TagTable::from_series(&s, PERIOD, sampling),
+        settings: Arc::new(TagSettings { model: Some(model.parse().unwrap()), ..Default::default() }),
+        report: Default::default(),
+        state: Default::default(),
+    }
+}
+
+fn fill(w: &mut TagWork, params: serde_json::Value) {
+    let mut reg = Registry::new();
+    register(&mut reg);
+    let step = reg.make("fill", &params).unwrap();
+    step.apply(std::slice::from_mut(w), &StepContext::new(3)).unwrap();
+    w.table.check().unwrap();
+}
+
+/// A random walk plus noise, with its truth.
+fn simulate(seed: u64, n: usize) -> (Vec<f64>, Vec<f64>) {
+    let mut rng = Rng::new(seed);
+    let mut x = 50.0;
+    let mut truth = Vec::with_capacity(n);
+    let mut y = Vec::with_capacity(n);
+    for _ in 0..n {
+        x += 0.05 * rng.normal();
+        truth.push(x);
+        y.push(x + 0.1 * rng.normal());
+    }
+    (truth, y)
+}
+
+#[test]
+fn gaps_get_rows_on_the_period_with_honest_intervals() {
+    // 200 shifts' worth of 2-minute gaps: coverage of the 95 % interval
+    // measured inside the gaps only.
+    let (mut inside, mut covered) = (0usize, 0usize);
+    for seed in 0..40u64 {
+        let (truth, y) = simulate(seed, 2000);
+        let keep: Vec<usize> = (0..2000).filter(|i| !(500..524).contains(i) && !(1500..1524).contains(i)).collect();
+        let ts: Vec<i64> = keep.iter().map(|&i| i as i64 * PERIOD).collect();
+        let vals: Vec<f64> = keep.iter().map(|&i| y[i]).collect();
+        let mut w = work(ts, vals, Sampling::Regular, "local-level");
+        fill(&mut w, serde_json::Value::Null);
+        let t = &w.table;
+        assert_eq!(t.len(), 2000, "rows inserted on the period");
+        for i in 0..2000 {
+            assert_eq!(t.ts_us[i], i as i64 * PERIOD);
+            if t.status[i] == Status::Filled {
+                assert!(t.raw[i].is_nan() && t.fault[i].is_none() && t.decided_by[i] == 3);
+                inside += 1;
+                if (t.value[i] - truth[i]).abs() <= 1.959_964 * t.std[i] {
+                    covered += 1;
+                }
+            }
+        }
+    }
+    assert_eq!(inside, 40 * 48);
+    let c = covered as f64 / inside as f64;
+    // Binomial sd at 1920 rows is 0.5 %, but rows of one gap are correlated:
+    // a generous band still catches a std that is too small or too large.
+    assert!((0.91..=0.985).contains(&c), "coverage inside gaps {c}");
+}
+
+#[test]
+fn rejected_readings_are_replaced_and_long_gaps_get_null_rows() {
+    let (_, mut y) = simulate(3, 1000);
+    y[300] = 999.0;
+    let ts: Vec<i64> = (0..1000).filter(|i| !(600..800).contains(i)).map(|i| i * PERIOD).collect();
+    let vals: Vec<f64> = (0..1000).filter(|i| !(600..800).contains(i)).map(|i| y[i as usize]).collect();
+    let mut w = work(ts, vals, Sampling::Regular, "local-level");
+    w.table.decide(300, Status::Rejected, Some(Fault::Spike), 2, 40.0, 4.5);
+    w.table.value[300] = f64::NAN;
+    fill(&mut w, serde_json::json!({"max_gap": "10m"}));
+    let t = &w.table;
+    assert_eq!(t.status[300], Status::Replaced);
+    assert_eq!((t.fault[300], t.decided_by[300], t.stat[300]), (Some(Fault::Spike), 2, 40.0));
+    assert!((t.value[300] - y[299]).abs() < 1.0 && t.std[300] > 0.0);
+    // The 200-row gap (16.7 minutes) is longer than max_gap: null values.
+    let gap: Vec<usize> = (0..t.len()).filter(|&i| t.status[i] == Status::Filled).collect();
+    assert_eq!(gap.len(), 200);
+    assert!(gap.iter().all(|&i| t.value[i].is_nan() && t.std[i].is_nan()));
+    assert_eq!(w.report.extra["fill"]["no_estimate"], 200);
+}
+
+#[test]
+fn exception_tags_are_filled_within_the_deadband() {
+    let mut rng = Rng::new(4);
+    let (mut x, mut last) = (50.0, f64::NAN);
+    let (mut ts, mut vals, mut truth) = (Vec::new(), Vec::new(), Vec::new());
+    for i in 0..2000i64 {
+        x += 0.03 * rng.normal();
+        truth.push(x);
+        if !((x - last).abs() <= 0.5) {
+            ts.push(i * PERIOD);
+            vals.push(x);
+            last = x;
+        }
+    }
+    let stored = ts.len();
+    let (first, last_ts) = (ts[0], ts[stored - 1]);
+    let mut w = work(ts, vals, Sampling::Exception { deadband: 0.5 }, "local-level");
+    fill(&mut w, serde_json::Value::Null);
+    let t = &w.table;
+    // Every scan from the first to the last stored reading has a row (the
+    // window's edges are not extrapolated).
+    assert_eq!(t.len(), ((last_ts - first) / PERIOD + 1) as usize);
+    let filled: Vec<usize> = (0..t.len()).filter(|&i| t.status[i] == Status::Filled).collect();
+    assert_eq!(filled.len(), t.len() - stored);
+    // The estimates stay near the truth: the deadband bounds them.
+    let worst = filled.iter().map(|&i| (t.value[i] - truth[(t.ts_us[i] / PERIOD) as usize]).abs()).fold(0.0, f64::max);
+    assert!(worst < 1.0, "worst fill error {worst} with a deadband of 0.5");
+}
+
+#[test]
+fn a_model_fitted_by_an_earlier_step_is_reused() {
+    let (_, y) = simulate(5, 500);
+    let mut w = work((0..500).map(|i| i * PERIOD).collect(), y, Sampling::Regular, "local-level");
+    w.report.model = Some("local-level".into());
+    w.report.params = [("sigma2.obs".to_string(), 0.01), ("sigma2.level".to_string(), 0.0025)].into();
+    fill(&mut w, serde_json::Value::Null);
+    assert_eq!(w.report.params["sigma2.obs"], 0.01);
+    // Every row gets the smoothed standard deviation of the process value,
+    // below the measurement noise.
+    assert!(w.table.std.iter().all(|&s| s > 0.0 && s < 0.1));
+    assert!(Registry::new().make("fill", &serde_json::Value::Null).is_err());
+    let mut reg = Registry::new();
+    register(&mut reg);
+    assert!(reg.make("fill", &serde_json::json!({"max_gap": "0s"})).err().unwrap().contains("max_gap"));
+    assert!(reg.make("fill", &serde_json::json!({"gap": "1m"})).err().unwrap().contains("unknown field"));
+}
