@@ -7,6 +7,8 @@
 //! - [`corpus_dir`] is the directory of small bad inputs, with its manifest.
 //! - [`repo_root`] is the repository; [`python`] is the Python of its `.venv`
 //!   with the pinned packages of `tests/python-requirements.txt`.
+//! - [`quality`]: the evidence-of-quality benchmark (scorer against the demo's
+//!   truth, rule-of-thumb baseline), used by `quality_bench` and `e2e/quality.rs`.
 
 // Test support: a failed setup step should stop the test with its message.
 #![allow(clippy::unwrap_used, clippy::expect_used, clippy::panic)]
@@ -19,6 +21,8 @@ use std::sync::{Arc, OnceLock};
 use arrow_array::{ArrayRef, RecordBatch};
 use parquet::arrow::ArrowWriter;
 use tagwright::rng::Rng;
+
+pub mod quality;
 
 /// 2026-03-01T06:00:00Z in microseconds, the start of the test series.
 pub const T0_US: i64 = 1_772_344_800_000_000;
