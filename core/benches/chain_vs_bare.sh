@@ -1,0 +1,70 @@
+#!/usr/bin/env bash
+# Speed of the whole cleaning chain (issue 4), measured side by side in one
+# run on generated long-format files of TAGS x HOURS at 1 s (default
+# 2,000 x 12 h, about 86 M rows):
+#  - a bare arrow-rs read + write of the file (examples/bare_copy.rs, one thread);
+#  - `tagwright run` with quality, range, faults and fill, parameters fitted
+#    per tag on the run's window (two fit rounds), on 1 and on 2 threads;
+#  - the same chain with the model parameters given in the pipeline (no fit).
+# Speed = rows per second; the figure of merit is engine speed / bare speed
+# (targets: >= 0.25 with fitting, >= 0.5 with parameters given).
+# Usage: bash core/benches/chain_vs_bare.sh [HOURS] [TAGS...]   (defaults: 12, 2000)
+# Files go to $BENCH_DIR (default: a temporary directory, removed at the end).
+set -euo pipefail
+repo="$(cd "$(dirname "${BASH_SOURCE[0]}")/../.." && pwd)"
+cd "$repo"
+hours="${1:-12}"
+shift || true
+tag_counts=("${@:-2000}")
+# shellcheck disable=SC2206
+tag_counts=(${tag_counts[*]})
+
+cargo build --release -q -p tagwright-cli --bin tagwright
+cargo build --release -q -p tagwright --example bare_copy --example gen_long
+bin="$repo/target/release"
+dir="${BENCH_DIR:-$(mktemp -d)}"
+[ -n "${BENCH_DIR:-}" ] || trap 'rm -rf "$dir"' EXIT
+
+# The generated tags wander as an AR(1) with phi 0.995 plus noise (see
+# core/examples/gen_long.rs); the given parameters are of that order.
+write_pipeline() {
+    local faults="$1" fill="$2"
+    cat <<YAML
+version: 1
+site: {timezone: UTC}
+input: {format: long, columns: {tag: tag, time: ts, value: value, quality: quality}, quality: opc}
+rules:
+  - tags: "*"
+    range: [-1000000, 1000000]
+    period: 1s
+    model: local-level+arma(1,0)
+    steps: [quality, range, $faults, $fill]
+YAML
+}
+params='{sigma2.obs: 0.0056, sigma2.level: 0.000001, phi.1: 0.995, sigma2.arma: 0.0225}'
+write_pipeline "faults" "fill" > "$dir/fit.yaml"
+write_pipeline "faults: {params: $params}" "fill" > "$dir/given.yaml"
+
+seconds() {
+    local start end
+    start=$(date +%s.%N)
+    "$@" > "$dir/cmd.out" 2>&1 || { cat "$dir/cmd.out" >&2; exit 1; }
+    end=$(date +%s.%N)
+    awk -v a="$start" -v b="$end" 'BEGIN { printf "%.2f", b - a }'
+}
+
+printf '%-6s %-10s %-8s %-22s %-8s %-8s\n' tags rows bare_s run seconds speed_ratio
+for tags in "${tag_counts[@]}"; do
+    file="$dir/long_${tags}.parquet"
+    "$bin/examples/gen_long" "$tags" "$hours" "$file" > /dev/null
+    rows=$((tags * hours * 3600))
+    bare=$(seconds "$bin/examples/bare_copy" "$file" "$dir/copy.parquet" zstd --reps 1 --only bare)
+    for case in "fit 1" "fit 2" "given 1" "given 2"; do
+        read -r kind threads <<< "$case"
+        s=$(seconds "$bin/tagwright" run --pipeline "$dir/$kind.yaml" --input "$file" --out "$dir/run" --threads "$threads")
+        ratio=$(awk -v a="$s" -v b="$bare" 'BEGIN { printf "%.2f", b / a }')
+        printf '%-6s %-10s %-8s %-22s %-8s %-8s\n' "$tags" "$rows" "$bare" "$kind params, $threads thr" "$s" "$ratio"
+    done
+    rm -f "$file" "$dir/copy.parquet"
+done
+echo "speed_ratio = bare read+write seconds / engine seconds (targets: >= 0.25 fitted, >= 0.5 given)."
