@@ -144,8 +144,10 @@ impl PartialEq for ExternalPlugin {
 }
 
 /// Loaded plugins by (resolved path, SHA-256); never emptied.
-fn cache() -> &'static Mutex<HashMap<(PathBuf, String), Arc<ExternalPlugin>>> {
-    static CACHE: OnceLock<Mutex<HashMap<(PathBuf, String), Arc<ExternalPlugin>>>> = OnceLock::new();
+type Cache = Mutex<HashMap<(PathBuf, String), Arc<ExternalPlugin>>>;
+
+fn cache() -> &'static Cache {
+    static CACHE: OnceLock<Cache> = OnceLock::new();
     CACHE.get_or_init(Default::default)
 }
 

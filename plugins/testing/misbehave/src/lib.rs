@@ -40,7 +40,7 @@ impl Plugin for Misbehave {
 
     fn process(&self, tag: &mut Tag<'_>) -> Result<(), Error> {
         let name = tag.name().to_string();
-        let on = |list: &[String]| list.iter().any(|t| *t == name);
+        let on = |list: &[String]| list.contains(&name);
         if tag.is_empty() {
             return Ok(());
         }
