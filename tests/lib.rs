@@ -343,12 +343,8 @@ if bad:
 pub fn plugin_library(crate_name: &str) -> PathBuf {
     let exe = std::env::current_exe().expect("path of the test binary");
     let deps = exe.parent().expect("directory of the test binary");
-    let file = format!(
-        "{}{}{}",
-        std::env::consts::DLL_PREFIX,
-        crate_name.replace('-', "_"),
-        std::env::consts::DLL_SUFFIX
-    );
+    let file =
+        format!("{}{}{}", std::env::consts::DLL_PREFIX, crate_name.replace('-', "_"), std::env::consts::DLL_SUFFIX);
     let lib = deps.join(&file);
     assert!(
         lib.is_file(),

@@ -156,7 +156,13 @@ fn print_summary(spec: &PipelineSpec, opts: &RunOptions, o: &RunOutcome) {
     println!("tagwright run {}", o.run_id);
     println!("pipeline  {} (sha256 {})", spec.path.display(), &spec.sha256[..spec.sha256.len().min(16)]);
     for p in &spec.plugins {
-        println!("plugin    {} {} ({}, sha256 {})", p.name, p.version, p.path.display(), p.sha256.get(..16).unwrap_or(&p.sha256));
+        println!(
+            "plugin    {} {} ({}, sha256 {})",
+            p.name,
+            p.version,
+            p.path.display(),
+            p.sha256.get(..16).unwrap_or(&p.sha256)
+        );
     }
     if let Some(l) = &opts.window_label {
         println!("window    {l} ({})", spec.site.timezone);

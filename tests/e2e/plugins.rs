@@ -122,13 +122,17 @@ fn the_hampel_plugin_cleans_a_run() {
         ),
     );
     let tags = ["FT-3101.PV", "FT-3113.PV", "TT-3102.PV"];
-    let spikes = [("FT-3101.PV", 100, 30.0), ("FT-3101.PV", 101, 25.0), ("FT-3113.PV", 0, 10.0), ("TT-3102.PV", 50, -8.0)];
+    let spikes =
+        [("FT-3101.PV", 100, 30.0), ("FT-3101.PV", 101, 25.0), ("FT-3113.PV", 0, 10.0), ("TT-3102.PV", 50, -8.0)];
     let input = input(&sb, &tags, &spikes);
 
     // `check` loads the plugin and names it.
     let r = tagwright(["check", "--pipeline", pipeline.to_str().unwrap()]);
     r.assert_code(0);
-    assert!(r.stdout.contains(&format!("plugin hampel {}", env!("CARGO_PKG_VERSION"))) && r.stdout.contains(&sha), "{r}");
+    assert!(
+        r.stdout.contains(&format!("plugin hampel {}", env!("CARGO_PKG_VERSION"))) && r.stdout.contains(&sha),
+        "{r}"
+    );
 
     let r = run(&sb, &pipeline, &input, "out");
     r.assert_code(0);
@@ -170,7 +174,10 @@ fn the_hampel_plugin_cleans_a_run() {
     let ft_rec = p.iter().find(|r| r["record"] == "tag" && r["tag"] == "FT-3101.PV").unwrap();
     assert_eq!(ft_rec["steps"], serde_json::json!(["quality", "plugin:hampel"]));
     let ev = p.iter().find(|r| r["record"] == "event" && r["tag"] == "FT-3101.PV").unwrap();
-    assert_eq!((ev["step"].as_str(), ev["action"].as_str(), ev["rows"].as_u64()), (Some("plugin:hampel"), Some("rejected"), Some(2)));
+    assert_eq!(
+        (ev["step"].as_str(), ev["action"].as_str(), ev["rows"].as_u64()),
+        (Some("plugin:hampel"), Some("rejected"), Some(2))
+    );
     assert_eq!(ev["threshold"].as_f64(), Some(3.5));
     assert!(ev["statistic"].as_f64().unwrap() > 3.5, "{ev}");
     let ev = p.iter().find(|r| r["record"] == "event" && r["tag"] == "TT-3102.PV").unwrap();
@@ -295,7 +302,8 @@ fn a_plugin_that_panics_or_errs_fails_only_that_tag() {
     assert!(!r.stderr.contains("panicked"), "{r}");
 
     let p = provenance(&sb.path().join("out/provenance.jsonl"));
-    let failed: Vec<&str> = p[0]["tags_failed"].as_array().unwrap().iter().map(|t| t["tag"].as_str().unwrap()).collect();
+    let failed: Vec<&str> =
+        p[0]["tags_failed"].as_array().unwrap().iter().map(|t| t["tag"].as_str().unwrap()).collect();
     assert_eq!(failed, ["FT-3113.PV", "TT-3102.PV"]);
     for tag in tags {
         let rec = p.iter().find(|r| r["record"] == "tag" && r["tag"] == tag).unwrap();

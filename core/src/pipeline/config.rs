@@ -1259,7 +1259,10 @@ rules:
         assert_eq!(r0.settings.uncertain_factor, Some(2.5));
         assert_eq!(r0.settings.group.as_ref().map(|g| g.id.as_str()), Some("rule1"));
         let steps = r0.steps.as_ref().unwrap();
-        assert_eq!(steps[0], StepSpec { name: "quality".into(), params: serde_json::Value::Null, line: 30, plugin: None });
+        assert_eq!(
+            steps[0],
+            StepSpec { name: "quality".into(), params: serde_json::Value::Null, line: 30, plugin: None }
+        );
         assert_eq!(steps[1].params, serde_json::json!({"action": "reject"}));
         assert_eq!(steps[1].line, 31);
         let r1 = &s.rules[1];

@@ -420,11 +420,7 @@ impl ExternalPlugin {
         if instance.is_null() {
             return Err(format!("plugin `{}`: create returned no instance", self.info.name));
         }
-        Ok(Arc::new(ExternalStep {
-            label: format!("plugin:{}", self.info.name),
-            plugin: self.clone(),
-            instance,
-        }))
+        Ok(Arc::new(ExternalStep { label: format!("plugin:{}", self.info.name), plugin: self.clone(), instance }))
     }
 }
 

@@ -36,12 +36,7 @@ impl Plugin for HampelPlugin {
     fn process(&self, tag: &mut Tag<'_>) -> Result<(), Error> {
         let f = &self.0;
         let mut outliers = Vec::new();
-        f.detect(
-            tag.value(),
-            |i| tag.status(i) == Status::Ok,
-            |i| tag.is_clean(i),
-            |i, z| outliers.push((i, z)),
-        );
+        f.detect(tag.value(), |i| tag.status(i) == Status::Ok, |i| tag.is_clean(i), |i, z| outliers.push((i, z)));
         for (i, z) in outliers {
             match f.action {
                 Action::Reject => tag.reject(i, Fault::Spike, z, f.k),

@@ -102,10 +102,7 @@ impl Hampel {
         let d = Hampel::default();
         let window = raw.window.unwrap_or(d.window as u64);
         if window < 3 || window % 2 == 0 || window > Hampel::MAX_WINDOW as u64 {
-            return Err(format!(
-                "window: {window}: write an odd number of readings from 3 to {}",
-                Hampel::MAX_WINDOW
-            ));
+            return Err(format!("window: {window}: write an odd number of readings from 3 to {}", Hampel::MAX_WINDOW));
         }
         let k = raw.k.unwrap_or(d.k);
         if !(k.is_finite() && k > 0.0) {

@@ -140,10 +140,8 @@ pub fn parse_params<T: serde::de::DeserializeOwned + Default>(params: &serde_jso
 #[macro_export]
 macro_rules! export_plugin {
     ($plugin:ty, $name:literal) => {
-        const _: () = assert!(
-            $crate::export::valid_name($name),
-            "plugin name: 1 to 64 characters of A-Z a-z 0-9 _ - ."
-        );
+        const _: () =
+            assert!($crate::export::valid_name($name), "plugin name: 1 to 64 characters of A-Z a-z 0-9 _ - .");
 
         #[doc(hidden)]
         mod __tagwright_plugin_entry {

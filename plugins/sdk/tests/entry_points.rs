@@ -143,7 +143,10 @@ fn errors_and_panics_become_return_codes() {
     assert_eq!(c.process(inst, "ERR"), Err((abi::ERROR, "no good".to_string())));
     let (code, msg) = c.process(inst, "PANIC").unwrap_err();
     assert_eq!(code, abi::PANIC);
-    assert!(msg.starts_with("panicked at ") && msg.contains("entry_points.rs") && msg.ends_with(": deliberate"), "{msg}");
+    assert!(
+        msg.starts_with("panicked at ") && msg.contains("entry_points.rs") && msg.ends_with(": deliberate"),
+        "{msg}"
+    );
     // The instance still works after a caught panic.
     c.process(inst, "FT-3113.PV").unwrap();
     unsafe { (*tagwright_plugin_root.functions).release.unwrap()(inst) };
