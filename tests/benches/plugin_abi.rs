@@ -10,7 +10,10 @@
 //!     cargo bench -p tagwright-tests --bench plugin_abi
 //!
 //! Criterion reports each variant; the last lines print the ratio from
-//! interleaved passes of the same run. Run it on a quiet machine.
+//! interleaved passes of the same run, and the cost of the crossing alone
+//! (a test plugin that changes one row per tag). Run it on a quiet machine;
+//! `cargo bench -p tagwright-tests --bench plugin_abi -- none` skips the
+//! criterion part (no benchmark is named `none`) and prints only those lines.
 
 #![allow(clippy::unwrap_used, clippy::expect_used)]
 
@@ -77,6 +80,8 @@ struct Setup {
     bases: Vec<TagTable>,
     builtin: Box<Make>,
     plugin: Box<Make>,
+    /// A plugin that flags one row per tag: the cost of the crossing alone.
+    crossing: Box<Make>,
     _dir: tempfile::TempDir,
 }
 
@@ -84,13 +89,16 @@ fn setup() -> Setup {
     let dir = tempfile::tempdir().unwrap();
     let plugins = dir.path().join("plugins");
     let (lib, sha) = tagwright_tests::install_plugin(&plugins, "tagwright-hampel-plugin");
-    let loaded = external::load(&lib, &sha, &[plugins]).unwrap();
+    let loaded = external::load(&lib, &sha, std::slice::from_ref(&plugins)).unwrap();
+    let (lib, sha) = tagwright_tests::install_plugin(&plugins, "tagwright-test-plugin-misbehave");
+    let crossing = external::load(&lib, &sha, &[plugins]).unwrap();
     let p = params();
     let p2 = p.clone();
     Setup {
         bases: base_tables(),
         builtin: Box::new(move || tagwright_tests::hampel_builtin::make(&p).unwrap()),
         plugin: Box::new(move || loaded.step(&p2).unwrap()),
+        crossing: Box::new(move || crossing.step(&serde_json::Value::Null).unwrap()),
         _dir: dir,
     }
 }
@@ -122,19 +130,21 @@ fn bench(c: &mut Criterion) {
 fn ratio() {
     let s = setup();
     let mut work = empty_work(&s.bases);
-    let (mut b, mut p) = (Vec::new(), Vec::new());
+    let (mut b, mut p, mut x) = (Vec::new(), Vec::new(), Vec::new());
     for _ in 0..5 {
         b.push(pass(&*s.builtin, &s.bases, &mut work).as_secs_f64());
         p.push(pass(&*s.plugin, &s.bases, &mut work).as_secs_f64());
+        x.push(pass(&*s.crossing, &s.bases, &mut work).as_secs_f64());
     }
     let median = |v: &mut Vec<f64>| {
         v.sort_by(f64::total_cmp);
         v[v.len() / 2]
     };
-    let (mb, mp) = (median(&mut b), median(&mut p));
+    let (mb, mp, mx) = (median(&mut b), median(&mut p), median(&mut x));
     println!("interleaved, 5 passes each, median per pass of {TAGS} tags x {SAMPLES} samples:");
     println!("  built-in step   {mb:.3} s  ({:.1} ns per sample)", mb * 1e9 / (TAGS * SAMPLES) as f64);
     println!("  plugin (C ABI)  {mp:.3} s  ({:.1} ns per sample)", mp * 1e9 / (TAGS * SAMPLES) as f64);
+    println!("  crossing alone  {mx:.3} s  ({:.0} us per tag: a plugin that changes one row)", mx * 1e6 / TAGS as f64);
     println!("  plugin / built-in = {:.3} (target <= 1.10)", mp / mb);
 }
 

@@ -327,22 +327,26 @@ fn invalid_plugin_output_fails_the_tag() {
     let sb = Sandbox::new();
     let (lib, sha) = install_plugin(&sb.path().join("plugins"), MISBEHAVE);
     let file = lib.file_name().unwrap().to_str().unwrap();
-    let params = "{bad_status_on: [A], bad_fault_on: [B], fill_on: [C], keep_value_on: [D]}";
+    let params = "{bad_status_on: [A], bad_fault_on: [B], fill_on: [C], keep_value_on: [D], change_value_on: [F]}";
     let step = plugin_step(&format!("plugins/{file}"), &sha, params);
     let pipeline = sb.write(
         "p.yaml",
         format!("version: 1\nplugins: {{allow: [plugins]}}\nrules:\n  - tags: \"*\"\n    steps: [{step}]\n"),
     );
-    let input = input(&sb, &["A", "B", "C", "D", "E"], &[]);
+    let input = input(&sb, &["A", "B", "C", "D", "E", "F"], &[]);
     let r = run(&sb, &pipeline, &input, "out");
     r.assert_code(2);
-    assert!(r.stdout.contains("1 processed, 4 failed"), "{r}");
+    assert!(r.stdout.contains("1 processed, 5 failed"), "{r}");
     let t0 = rfc3339(T0_US);
     for (tag, message) in [
         ("A", format!("row 0 ({t0}): status code 9 is not a status (0 ok, 1 filled, 2 replaced, 3 rejected)")),
         ("B", format!("row 0 ({t0}): fault code 42 is not a fault")),
         ("C", format!("row 0 ({t0}): status changed from ok to filled; only the host inserts rows")),
         ("D", format!("row 0 ({t0}): status rejected with a value; a rejected row has no value")),
+        (
+            "F",
+            format!("row 0 ({t0}): status ok with a value other than the reading; a kept row's value is its reading"),
+        ),
     ] {
         let want = format!("FAILED    {tag}: step `plugin:misbehave`: tag {tag}: {message}");
         assert!(r.stdout.contains(&want), "want {want:?}\n{r}");

@@ -45,7 +45,7 @@ use tagwright_plugin_sdk::abi::{
 };
 
 use super::{Step, StepContext, StepError, TagWork};
-use crate::series::{Fault, Status};
+use crate::series::{Fault, Status, TagTable};
 
 /// Why a plugin could not be loaded. Each message names the file.
 #[derive(Debug, thiserror::Error)]
@@ -471,14 +471,53 @@ fn same(a: f64, b: f64) -> bool {
     a == b || (a.is_nan() && b.is_nan())
 }
 
+/// The bytes of a slice of plain values (no padding, no invalid bit patterns
+/// when read as bytes: `u8`-represented enums, `f64`).
+fn bytes<T: Copy>(v: &[T]) -> &[u8] {
+    // SAFETY: callers pass `repr(u8)` enums or `f64`, which have no padding;
+    // any initialised memory is valid as `u8`; the length covers exactly `v`.
+    unsafe { std::slice::from_raw_parts(v.as_ptr().cast::<u8>(), std::mem::size_of_val(v)) }
+}
+
+/// Buffers of the crossing, kept per thread and reused from tag to tag.
+#[derive(Default)]
+struct Scratch {
+    status: Vec<u8>,
+    fault: Vec<u8>,
+    fault_before: Vec<u8>,
+    value_before: Vec<f64>,
+}
+
+thread_local! {
+    static SCRATCH: std::cell::RefCell<Scratch> = std::cell::RefCell::new(Scratch::default());
+}
+
+/// Rows compared at once when looking for what the plugin changed.
+const CHUNK: usize = 512;
+
 impl ExternalStep {
     /// Runs the plugin on one tag and applies what it changed.
     fn process(&self, work: &mut TagWork, ctx: &StepContext) -> Result<(), String> {
+        SCRATCH.with(|s| match s.try_borrow_mut() {
+            Ok(mut s) => self.process_with(&mut s, work, ctx),
+            // Not reachable (nothing calls back into the host during
+            // `process`); fresh buffers keep it correct anyway.
+            Err(_) => self.process_with(&mut Scratch::default(), work, ctx),
+        })
+    }
+
+    fn process_with(&self, s: &mut Scratch, work: &mut TagWork, ctx: &StepContext) -> Result<(), String> {
         let t = &mut work.table;
         let n = t.len();
-        let mut status: Vec<u8> = t.status.iter().map(|&s| s as u8).collect();
-        let mut fault: Vec<u8> = t.fault.iter().map(|&f| fault_code(f)).collect();
-        let value_before = t.value.clone();
+        // `Status` is `repr(u8)`: its values are its codes.
+        s.status.clear();
+        s.status.extend_from_slice(bytes(&t.status));
+        s.fault.clear();
+        s.fault.extend(t.fault.iter().map(|&f| fault_code(f)));
+        s.fault_before.clear();
+        s.fault_before.extend_from_slice(&s.fault);
+        s.value_before.clear();
+        s.value_before.extend_from_slice(&t.value);
         let (lo, hi) = work.settings.range.unwrap_or((f64::NAN, f64::NAN));
         fn m<T>(v: &mut [T]) -> SliceMut<T> {
             SliceMut { ptr: v.as_mut_ptr(), len: v.len() }
@@ -492,8 +531,8 @@ impl ExternalStep {
             quality: Slice { ptr: t.quality.as_ptr().cast::<u8>(), len: t.quality.len() },
             value: m(&mut t.value),
             std: m(&mut t.std),
-            status: m(&mut status),
-            fault: m(&mut fault),
+            status: m(&mut s.status),
+            fault: m(&mut s.fault),
             stat: m(&mut t.stat),
             threshold: m(&mut t.threshold),
             period_us: t.period_us,
@@ -506,51 +545,68 @@ impl ExternalStep {
         if code != abi::OK {
             return Err(self.plugin.error_message(code));
         }
-        let at = |i: usize| format!("row {i} ({})", crate::io::format_ts_us(t.ts_us[i]));
-        for i in 0..n {
-            let (s, f) = (status[i], fault[i]);
-            let (old_s, old_f) = (t.status[i], t.fault[i]);
-            let value_changed = !same(value_before[i], t.value[i]);
-            if s == old_s as u8 && f == fault_code(old_f) && !value_changed {
-                continue;
+        // Most rows are unchanged: compare chunk by chunk as bytes (a value
+        // counts as changed when its bits differ), and look at the rows of a
+        // chunk only when something in it differs.
+        let mut start = 0;
+        while start < n {
+            let end = (start + CHUNK).min(n);
+            let r = start..end;
+            let same_chunk = s.status[r.clone()] == *bytes(&t.status[r.clone()])
+                && s.fault[r.clone()] == s.fault_before[r.clone()]
+                && bytes(&s.value_before[r.clone()]) == bytes(&t.value[r.clone()]);
+            if !same_chunk {
+                for i in r {
+                    check_row(t, i, s.status[i], s.fault[i], s.value_before[i], ctx.index)?;
+                }
             }
-            let Some(new_s) = status_of(s) else {
-                return Err(format!(
-                    "{}: status code {s} is not a status (0 ok, 1 filled, 2 replaced, 3 rejected)",
-                    at(i)
-                ));
-            };
-            let Some(new_f) = fault_of(f) else {
-                return Err(format!(
-                    "{}: fault code {f} is not a fault (0 spike, 1 stuck, 2 step, 3 drift, 4 noise, 5 range, \
-                     6 bad_quality, 255 none)",
-                    at(i)
-                ));
-            };
-            if (new_s == Status::Filled) != (old_s == Status::Filled) {
-                return Err(format!(
-                    "{}: status changed from {} to {}; only the host inserts rows (status filled)",
-                    at(i),
-                    old_s.as_str(),
-                    new_s.as_str()
-                ));
-            }
-            if new_s == Status::Ok && !same(t.value[i], t.raw[i]) {
-                return Err(format!(
-                    "{}: status ok with a value other than the reading; a kept row's value is its reading (give an \
-                     estimate with status replaced)",
-                    at(i)
-                ));
-            }
-            if new_s == Status::Rejected && !t.value[i].is_nan() {
-                return Err(format!("{}: status rejected with a value; a rejected row has no value (NaN)", at(i)));
-            }
-            t.status[i] = new_s;
-            t.fault[i] = new_f;
-            t.decided_by[i] = ctx.index;
+            start = end;
         }
         Ok(())
     }
+}
+
+/// Checks row `i` after the plugin ran (status and fault codes as it left
+/// them, the value before it ran) and applies a change.
+fn check_row(t: &mut TagTable, i: usize, s: u8, f: u8, value_before: f64, step: u16) -> Result<(), String> {
+    let (old_s, old_f) = (t.status[i], t.fault[i]);
+    // A value counts as changed unless equal or both NaN.
+    if s == old_s as u8 && f == fault_code(old_f) && same(value_before, t.value[i]) {
+        return Ok(());
+    }
+    let at = || format!("row {i} ({})", crate::io::format_ts_us(t.ts_us[i]));
+    let Some(new_s) = status_of(s) else {
+        return Err(format!("{}: status code {s} is not a status (0 ok, 1 filled, 2 replaced, 3 rejected)", at()));
+    };
+    let Some(new_f) = fault_of(f) else {
+        return Err(format!(
+            "{}: fault code {f} is not a fault (0 spike, 1 stuck, 2 step, 3 drift, 4 noise, 5 range, 6 bad_quality, \
+             255 none)",
+            at()
+        ));
+    };
+    if (new_s == Status::Filled) != (old_s == Status::Filled) {
+        return Err(format!(
+            "{}: status changed from {} to {}; only the host inserts rows (status filled)",
+            at(),
+            old_s.as_str(),
+            new_s.as_str()
+        ));
+    }
+    if new_s == Status::Ok && !same(t.value[i], t.raw[i]) {
+        return Err(format!(
+            "{}: status ok with a value other than the reading; a kept row's value is its reading (give an \
+             estimate with status replaced)",
+            at()
+        ));
+    }
+    if new_s == Status::Rejected && !t.value[i].is_nan() {
+        return Err(format!("{}: status rejected with a value; a rejected row has no value (NaN)", at()));
+    }
+    t.status[i] = new_s;
+    t.fault[i] = new_f;
+    t.decided_by[i] = step;
+    Ok(())
 }
 
 impl Step for ExternalStep {

@@ -113,13 +113,20 @@ impl<'a> Tag<'a> {
                 range: (c.range_low.is_finite() && c.range_high.is_finite()).then_some((c.range_low, c.range_high)),
             }
         };
-        if let Some(i) = tag.quality.iter().position(|&q| Quality::from_code(q).is_none()) {
+        // Codes are small: a maximum over the column (which vectorises) finds
+        // any bad one; the row is looked up only then. Fault codes are shifted
+        // by one so that NO_FAULT (255) wraps to 0.
+        let max = |v: &[u8], shift: u8| v.iter().fold(0u8, |m, &x| m.max(x.wrapping_add(shift)));
+        if max(tag.quality, 0) > Quality::Bad.code() {
+            let i = tag.quality.iter().position(|&q| Quality::from_code(q).is_none()).unwrap_or(0);
             return Err(Error::new(format!("host passed quality code {} at row {i}", tag.quality[i])));
         }
-        if let Some(i) = tag.cols.status.iter().position(|&s| Status::from_code(s).is_none()) {
+        if max(tag.cols.status, 0) > Status::Rejected.code() {
+            let i = tag.cols.status.iter().position(|&s| Status::from_code(s).is_none()).unwrap_or(0);
             return Err(Error::new(format!("host passed status code {} at row {i}", tag.cols.status[i])));
         }
-        if let Some(i) = tag.cols.fault.iter().position(|&f| f != NO_FAULT && Fault::from_code(f).is_none()) {
+        if max(tag.cols.fault, 1) > Fault::BadQuality.code() + 1 {
+            let i = tag.cols.fault.iter().position(|&f| f != NO_FAULT && Fault::from_code(f).is_none()).unwrap_or(0);
             return Err(Error::new(format!("host passed fault code {} at row {i}", tag.cols.fault[i])));
         }
         Ok(tag)

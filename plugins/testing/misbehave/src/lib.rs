@@ -5,7 +5,8 @@
 //! Parameters (lists of tag names): `panic_on` (panics inside `process`),
 //! `error_on` (returns an error), `bad_status_on` (writes status code 9),
 //! `bad_fault_on` (writes fault code 42), `fill_on` (marks a reading as an
-//! inserted row), `keep_value_on` (rejects a reading but leaves its value);
+//! inserted row), `keep_value_on` (rejects a reading but leaves its value),
+//! `change_value_on` (changes a kept reading's value, status left `ok`);
 //! and `fail_create: true` (refuses its parameters).
 
 use tagwright_plugin_sdk::{export_plugin, parse_params, Error, Fault, Plugin, Status, Tag};
@@ -25,6 +26,8 @@ struct Misbehave {
     fill_on: Vec<String>,
     #[serde(default)]
     keep_value_on: Vec<String>,
+    #[serde(default)]
+    change_value_on: Vec<String>,
     #[serde(default)]
     fail_create: bool,
 }
@@ -62,6 +65,8 @@ impl Plugin for Misbehave {
         } else if on(&self.keep_value_on) {
             cols.status[0] = Status::Rejected.code();
             cols.fault[0] = Fault::Spike.code();
+        } else if on(&self.change_value_on) {
+            cols.value[0] += 1.0;
         } else {
             tag.flag(0, Fault::Noise, 1.0, 0.5);
         }
