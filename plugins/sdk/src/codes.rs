@@ -16,6 +16,7 @@ macro_rules! codes {
             pub const ALL: &'static [$name] = &[$($name::$variant,)+];
 
             /// The value of a code, if it is one.
+            #[inline]
             pub const fn from_code(code: u8) -> Option<$name> {
                 match code {
                     $($code => Some($name::$variant),)+
@@ -24,11 +25,13 @@ macro_rules! codes {
             }
 
             /// The code that crosses the ABI.
+            #[inline]
             pub const fn code(self) -> u8 {
                 self as u8
             }
 
             /// The name written in `cleaned.parquet`.
+            #[inline]
             pub const fn as_str(self) -> &'static str {
                 match self {
                     $($name::$variant => $text,)+
@@ -80,6 +83,7 @@ codes! {
 }
 
 /// The code of an optional fault.
+#[inline]
 pub const fn fault_code(f: Option<Fault>) -> u8 {
     match f {
         Some(f) => f.code(),

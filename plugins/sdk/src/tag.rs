@@ -133,74 +133,88 @@ impl<'a> Tag<'a> {
     }
 
     /// The tag name.
+    #[inline]
     pub fn name(&self) -> &str {
         self.name
     }
 
     /// Number of rows.
+    #[inline]
     pub fn len(&self) -> usize {
         self.ts_us.len()
     }
 
     /// True when the tag has no row.
+    #[inline]
     pub fn is_empty(&self) -> bool {
         self.ts_us.is_empty()
     }
 
     /// Sample times, microseconds since 1970-01-01 UTC, strictly increasing.
+    #[inline]
     pub fn ts_us(&self) -> &[i64] {
         self.ts_us
     }
 
     /// The readings as read (NaN where none, and on filled rows).
+    #[inline]
     pub fn raw(&self) -> &[f64] {
         self.raw
     }
 
     /// The cleaned values so far (NaN: null).
+    #[inline]
     pub fn value(&self) -> &[f64] {
         self.cols.value
     }
 
     /// Posterior standard deviations so far (NaN: none).
+    #[inline]
     pub fn std(&self) -> &[f64] {
         self.cols.std
     }
 
     /// Nominal sampling period, microseconds.
+    #[inline]
     pub fn period_us(&self) -> i64 {
         self.period_us
     }
 
     /// The instrument range `[low, high]` the pipeline gives the tag, if any.
+    #[inline]
     pub fn range(&self) -> Option<(f64, f64)> {
         self.range
     }
 
     /// Quality of row `i`'s reading.
+    #[inline]
     pub fn quality(&self, i: usize) -> Quality {
         // Codes were checked in `from_columns`.
         Quality::from_code(self.quality[i]).unwrap_or(Quality::Bad)
     }
 
     /// Status of row `i`.
+    #[inline]
     pub fn status(&self, i: usize) -> Status {
         Status::from_code(self.cols.status[i]).unwrap_or(Status::Rejected)
     }
 
     /// Fault of row `i`, if any.
+    #[inline]
     pub fn fault(&self, i: usize) -> Option<Fault> {
         Fault::from_code(self.cols.fault[i])
     }
 
     /// True when row `i` is a kept reading (status `ok`) with no fault set
     /// by an earlier step: the rows a detector normally tests.
+    #[inline]
     pub fn is_clean(&self, i: usize) -> bool {
         self.cols.status[i] == Status::Ok.code() && self.cols.fault[i] == NO_FAULT
     }
 
     /// Rejects row `i`'s reading: status `rejected`, the fault, value and std
     /// NaN, and the statistic and threshold behind the decision.
+    #[inline]
     pub fn reject(&mut self, i: usize, fault: Fault, stat: f64, threshold: f64) {
         self.decide(i, Status::Rejected, Some(fault), stat, threshold);
         self.cols.value[i] = f64::NAN;
@@ -209,6 +223,7 @@ impl<'a> Tag<'a> {
 
     /// Replaces row `i`'s reading by an estimate with its standard deviation:
     /// status `replaced`.
+    #[inline]
     #[allow(clippy::too_many_arguments)]
     pub fn replace(&mut self, i: usize, value: f64, std: f64, fault: Fault, stat: f64, threshold: f64) {
         self.decide(i, Status::Replaced, Some(fault), stat, threshold);
@@ -218,16 +233,19 @@ impl<'a> Tag<'a> {
 
     /// Flags row `i`'s reading with a fault and keeps it (status `ok`, value
     /// = raw).
+    #[inline]
     pub fn flag(&mut self, i: usize, fault: Fault, stat: f64, threshold: f64) {
         self.decide(i, Status::Ok, Some(fault), stat, threshold);
         self.cols.value[i] = self.raw[i];
     }
 
     /// Sets row `i`'s posterior standard deviation.
+    #[inline]
     pub fn set_std(&mut self, i: usize, std: f64) {
         self.cols.std[i] = std;
     }
 
+    #[inline]
     fn decide(&mut self, i: usize, status: Status, fault: Option<Fault>, stat: f64, threshold: f64) {
         self.cols.status[i] = status.code();
         self.cols.fault[i] = fault_code(fault);
@@ -236,6 +254,7 @@ impl<'a> Tag<'a> {
     }
 
     /// All writable columns as slices, for plugins that work column-wise.
+    #[inline]
     pub fn columns_mut(&mut self) -> &mut Columns<'a> {
         &mut self.cols
     }
