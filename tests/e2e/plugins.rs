@@ -197,6 +197,7 @@ fn check_lists_every_plugin_that_cannot_be_loaded() {
     let (_, sha_abi) = install_plugin(&dir, "tagwright-test-plugin-bad-abi");
     let (_, sha_magic) = install_plugin(&dir, "tagwright-test-plugin-bad-magic");
     let (_, sha_root) = install_plugin(&dir, "tagwright-test-plugin-no-root");
+    let (_, sha_unwind) = install_plugin(&dir, "tagwright-test-plugin-no-unwind");
     let (_, sha_hampel) = install_plugin(&dir, HAMPEL);
     let (_, sha_mis) = install_plugin(&dir, MISBEHAVE);
     // A world-writable copy, in a directory of its own.
@@ -222,6 +223,10 @@ fn check_lists_every_plugin_that_cannot_be_loaded() {
         (
             plugin_step(&format!("plugins/{}", so("tagwright_test_plugin_no_root")), &sha_root, "{}"),
             "not a tagwright plugin: it does not export the symbol `tagwright_plugin_root`",
+        ),
+        (
+            plugin_step(&format!("plugins/{}", so("tagwright_test_plugin_no_unwind")), &sha_unwind, "{}"),
+            "the plugin was built with panic = \"abort\", so a panic in it would end tagwright",
         ),
         (
             plugin_step(&format!("plugins/{}", so("tagwright_hampel_plugin")), &wrong_sha, "{}"),

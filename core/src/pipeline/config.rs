@@ -1508,6 +1508,37 @@ rules:
     }
 
     #[test]
+    fn plugin_step_errors() {
+        let step = |allow: &str, body: &str| {
+            format!("version: 1\n{allow}rules:\n  - tags: a\n    steps:\n      - quality\n      - plugin: {body}\n")
+        };
+        let sha = "0".repeat(64);
+        assert_err(
+            &step("", &format!("{{path: x.so, sha256: \"{sha}\"}}")),
+            "6:",
+            "rules[0].steps[1].plugin.path: plugin: no directory is allowed to hold plugins",
+        );
+        assert_err(
+            &step("plugins: {allow: [p]}\n", "{path: p/x.so, sha256: abc}"),
+            "7:",
+            "rules[0].steps[1].plugin.sha256: plugin: `abc` is not a SHA-256",
+        );
+        assert_err(
+            &step("plugins: {allow: [p]}\n", &format!("{{path: p/x.so, sha256: \"{sha}\", parms: {{}}}}")),
+            "7:",
+            "rules[0].steps[1].plugin: step `plugin`: unknown field `parms`",
+        );
+        assert_err(&step("", "{sha256: abc}"), "6:", "step `plugin`: missing field `path`");
+        assert_err(&step("plugins: {allow: [p]}\n", "{path: \" \", sha256: abc}"), "7:", "plugin.path: empty path");
+        // The file is looked for relative to the pipeline's directory.
+        assert_err(
+            &step("plugins: {allow: [p]}\n", &format!("{{path: p/x.so, sha256: \"{sha}\"}}")),
+            "7:",
+            "pipelines/p/x.so: cannot find the plugin",
+        );
+    }
+
+    #[test]
     fn every_problem_is_reported_in_file_order() {
         let text =
             "version: 1\nsite: {timezone: Mars/Olympus}\nrules:\n  - tags: \"[\"\n    period: fast\n    steps: [fil]\n";
