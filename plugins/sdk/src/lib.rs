@@ -145,6 +145,7 @@ macro_rules! export_plugin {
 
         #[doc(hidden)]
         mod __tagwright_plugin_entry {
+            #[allow(unused_imports)]
             use super::*;
 
             pub(super) unsafe extern "C" fn create(
