@@ -9,9 +9,15 @@
 //!   with the pinned packages of `tests/python-requirements.txt`.
 //! - [`quality`]: the evidence-of-quality benchmark (scorer against the demo's
 //!   truth, rule-of-thumb baseline), used by `quality_bench` and `e2e/quality.rs`.
+//! - [`plugin_library`] finds a plugin's shared library built beside the
+//!   test binary; [`install_plugin`] copies it where a pipeline may load it.
+//! - [`hampel_builtin`]: the example plugin's code linked as a built-in step,
+//!   for the equivalence test and the boundary-cost benchmark.
 
 // Test support: a failed setup step should stop the test with its message.
 #![allow(clippy::unwrap_used, clippy::expect_used, clippy::panic)]
+
+pub mod hampel_builtin;
 
 use std::ffi::OsStr;
 use std::path::{Path, PathBuf};
@@ -330,4 +336,48 @@ if bad:
     } else {
         Err(format!("{}{}", String::from_utf8_lossy(&out.stdout).trim(), String::from_utf8_lossy(&out.stderr).trim()))
     }
+}
+
+/// The shared library of the plugin crate `crate_name` (as `tagwright-hampel-plugin`).
+///
+/// The plugin crates are dev-dependencies of this package, so cargo builds
+/// their `.so` (`.dylib`, `.dll`) into `<target>/<profile>/deps`, the
+/// directory of the test and bench binaries. Panics (the test fails, it is
+/// not skipped) when the library is missing.
+pub fn plugin_library(crate_name: &str) -> PathBuf {
+    let exe = std::env::current_exe().expect("path of the test binary");
+    let deps = exe.parent().expect("directory of the test binary");
+    let file =
+        format!("{}{}{}", std::env::consts::DLL_PREFIX, crate_name.replace('-', "_"), std::env::consts::DLL_SUFFIX);
+    let lib = deps.join(&file);
+    assert!(
+        lib.is_file(),
+        "{} was not built: `{crate_name}` must be a dev-dependency of tagwright-tests (tests/Cargo.toml), so that \
+         `cargo test --workspace` builds it beside the test binaries",
+        lib.display()
+    );
+    lib
+}
+
+/// SHA-256 of a file, lower-case hex.
+pub fn sha256_file(path: &Path) -> String {
+    use sha2::Digest;
+    hex::encode(sha2::Sha256::digest(std::fs::read(path).unwrap()))
+}
+
+/// Copies the plugin `crate_name` into `dir` (created, mode 0755) as
+/// `<file name>` with mode 0755, and returns its path and SHA-256.
+pub fn install_plugin(dir: &Path, crate_name: &str) -> (PathBuf, String) {
+    let lib = plugin_library(crate_name);
+    std::fs::create_dir_all(dir).unwrap();
+    let to = dir.join(lib.file_name().unwrap());
+    std::fs::copy(&lib, &to).unwrap();
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::set_permissions(dir, std::fs::Permissions::from_mode(0o755)).unwrap();
+        std::fs::set_permissions(&to, std::fs::Permissions::from_mode(0o755)).unwrap();
+    }
+    let sha = sha256_file(&to);
+    (to, sha)
 }

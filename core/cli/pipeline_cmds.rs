@@ -159,6 +159,15 @@ fn print_summary(spec: &PipelineSpec, opts: &RunOptions, o: &RunOutcome) {
     let faults: Vec<String> = o.faults.iter().map(|(f, c)| format!("{f} {c}")).collect();
     println!("tagwright run {}", o.run_id);
     println!("pipeline  {} (sha256 {})", spec.path.display(), &spec.sha256[..spec.sha256.len().min(16)]);
+    for p in &spec.plugins {
+        println!(
+            "plugin    {} {} ({}, sha256 {})",
+            p.name,
+            p.version,
+            p.path.display(),
+            p.sha256.get(..16).unwrap_or(&p.sha256)
+        );
+    }
     if let Some(l) = &opts.window_label {
         println!("window    {l} ({})", spec.site.timezone);
     }
@@ -192,6 +201,9 @@ pub fn check(args: &CheckArgs) -> Result<(), Failure> {
         spec.shifts.len(),
         spec.site.timezone
     );
+    for p in &spec.plugins {
+        println!("plugin {} {}: {} (sha256 {})", p.name, p.version, p.path.display(), p.sha256);
+    }
     if args.input.is_empty() {
         return Ok(());
     }

@@ -9,7 +9,7 @@ use std::process::Command;
 
 use tagwright::pipeline::PipelineSpec;
 use tagwright::plugin::Registry;
-use tagwright_tests::{python, repo_root, Sandbox};
+use tagwright_tests::{install_plugin, python, repo_root, Sandbox};
 
 /// The one pipeline that may name steps not registered yet (it is written
 /// ahead of them); any other load error fails it too.
@@ -139,6 +139,17 @@ const BAD: &[(&str, &str)] = &[
     ("step_bad_param", "version: 1\nrules: [{tags: a, range: [0, 1], steps: [range: {actoin: flag}]}]\n"),
     ("step_bad_action", "version: 1\nrules: [{tags: a, range: [0, 1], steps: [range: {action: drop}]}]\n"),
     ("quality_bad_param", "version: 1\nrules: [{tags: a, steps: [quality: {uncertain: maybe}]}]\n"),
+    ("plugin_bare", "version: 1\nplugins: {allow: [p]}\nrules: [{tags: a, steps: [plugin]}]\n"),
+    ("plugin_no_sha", "version: 1\nplugins: {allow: [p]}\nrules: [{tags: a, steps: [plugin: {path: p/x.so}]}]\n"),
+    (
+        "plugin_bad_sha",
+        "version: 1\nplugins: {allow: [p]}\nrules: [{tags: a, steps: [plugin: {path: p/x.so, sha256: abc}]}]\n",
+    ),
+    (
+        "plugin_unknown_key",
+        "version: 1\nplugins: {allow: [p]}\nrules:\n  - tags: a\n    steps:\n      - plugin:\n          path: p/x.so\n          \
+         sha256: \"0000000000000000000000000000000000000000000000000000000000000000\"\n          parms: {}\n",
+    ),
 ];
 
 /// Pipelines both accept.
@@ -164,6 +175,14 @@ fn the_schema_rejects_what_the_loader_rejects() {
     for (name, text) in BAD.iter().chain(GOOD) {
         files.push(sb.write(&format!("{name}.yaml"), text));
     }
+    // A plugin step that loads: the example plugin, installed with its hash.
+    let (lib, sha) = install_plugin(&sb.path().join("plugins"), "tagwright-hampel-plugin");
+    let plugin = format!(
+        "version: 1\nplugins: {{allow: [plugins]}}\nrules:\n  - tags: \"FT-*.PV\"\n    steps:\n      - quality\n      - plugin:\n          \
+         path: plugins/{}\n          sha256: \"{sha}\"\n          params: {{window: 9, k: 3.5, action: flag}}\n",
+        lib.file_name().unwrap().to_str().unwrap()
+    );
+    files.push(sb.write("plugin_good.yaml", plugin));
     let errors = schema_errors(&files);
     let mut disagreements = Vec::new();
     for (i, file) in files.iter().enumerate() {

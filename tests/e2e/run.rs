@@ -349,3 +349,43 @@ print("ok", df.height)
     assert!(out.status.success(), "{}\n{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
     assert!(String::from_utf8_lossy(&out.stdout).starts_with("ok 240"));
 }
+
+/// The demo through the whole chain: every status and every fault kind
+/// appears, filled and replaced rows carry an estimate and its std, and every
+/// changed or flagged row belongs to exactly one provenance event.
+#[test]
+fn the_demo_shows_every_status_and_fault_with_one_event_per_change() {
+    let sb = Sandbox::new();
+    let out = sb.path().join("demo");
+    let r = tagwright(["demo", "--out", out.to_str().unwrap()]);
+    r.assert_code(0);
+    assert!(r.stdout.contains("IEC 61511"), "{r}");
+    let c = read_cleaned(&out.join("run/cleaned.parquet"));
+    for s in ["ok", "filled", "replaced", "rejected"] {
+        assert!(c.status.iter().any(|x| x == s), "no `{s}` row");
+    }
+    for f in ["spike", "stuck", "step", "drift", "noise", "range", "bad_quality"] {
+        assert!(c.fault.iter().any(|x| x.as_deref() == Some(f)), "no `{f}` row");
+    }
+    let mut with_estimate = 0;
+    for i in 0..c.tag.len() {
+        match c.status[i].as_str() {
+            "replaced" => assert!(c.value[i].is_some() && c.std[i].is_some(), "row {i}"),
+            "rejected" => assert!(c.value[i].is_none(), "row {i}"),
+            "filled" => {
+                assert!(c.raw[i].is_none() && c.fault[i].is_none(), "row {i}");
+                with_estimate += usize::from(c.value[i].is_some());
+            }
+            _ => {}
+        }
+    }
+    assert!(with_estimate > 1000);
+    let changed = (0..c.tag.len()).filter(|&i| c.status[i] != "ok" || c.fault[i].is_some()).count();
+    let recs = provenance(&out.join("run/provenance.jsonl"));
+    let in_events: u64 = recs.iter().filter(|r| r["record"] == "event").map(|r| r["rows"].as_u64().unwrap()).sum();
+    assert_eq!(in_events as usize, changed);
+    // The drifting transmitter is named with its bias at the end.
+    let tt = recs.iter().find(|r| r["record"] == "tag" && r["tag"] == "TT-3105B.PV").unwrap();
+    let bias = tt["extra"]["drift"]["bias_end"].as_f64().unwrap();
+    assert!((bias - 2.1).abs() < 0.2, "{bias}");
+}

@@ -147,12 +147,12 @@ pub fn run(
         let mut chain = Vec::with_capacity(resolved.steps.len());
         for s in &resolved.steps {
             chain.push(
-                registry
-                    .make(&s.name, &s.params)
+                s.make(registry)
                     .map_err(|e| EngineError::Config(format!("{}:{}: {e}", spec.path.display(), s.line)))?,
             );
         }
-        let names = resolved.steps.iter().map(|s| s.name.clone()).collect();
+        // The steps' own names: an external step names its plugin (`plugin:NAME`).
+        let names = chain.iter().map(|s| s.name().to_string()).collect();
         units.push(Unit { tags: vec![(tag.clone(), resolved)], chain, names });
     }
     let selected: Vec<String> = {

@@ -137,7 +137,7 @@ impl RunRecord {
             "command_line": opts.command_line,
             "pipeline": {"path": spec.path.display().to_string(), "sha256": spec.sha256},
             "inputs": inputs,
-            "plugins": [],
+            "plugins": spec.plugins,
             "window": {
                 "from": opts.window.map(|w| time_text(w.0)),
                 "to": opts.window.map(|w| time_text(w.1)),

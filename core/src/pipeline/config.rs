@@ -17,6 +17,7 @@
 use std::collections::HashMap;
 use std::fmt;
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 
 use serde::de::{self, value::MapAccessDeserializer, IntoDeserializer, MapAccess, SeqAccess, Visitor};
 use serde::{Deserialize, Deserializer};
@@ -24,7 +25,7 @@ use sha2::{Digest, Sha256};
 
 use super::select::check_pattern;
 use super::spec::*;
-use crate::plugin::Registry;
+use crate::plugin::{external, ExternalPlugin, Registry};
 use crate::series::Sampling;
 use crate::ssm::ModelSpec;
 
@@ -808,8 +809,17 @@ impl Check<'_> {
                 self.fail("rules", "empty; a pipeline needs at least one rule");
                 Vec::new()
             }
-            Some(r) => r.into_iter().enumerate().map(|(i, r)| self.rule(i, r, registry)).collect(),
+            Some(r) => {
+                let plugins = PluginPlaces { base, allowed: &plugin_dirs };
+                r.into_iter().enumerate().map(|(i, r)| self.rule(i, r, registry, &plugins)).collect()
+            }
         };
+        let mut plugins: Vec<crate::plugin::PluginInfo> = Vec::new();
+        for p in rules.iter().flat_map(|r| r.steps.iter().flatten()).filter_map(|s| s.plugin.as_ref()) {
+            if !plugins.contains(p.info()) {
+                plugins.push(p.info().clone());
+            }
+        }
         Some(PipelineSpec {
             path: path.to_path_buf(),
             sha256,
@@ -818,6 +828,7 @@ impl Check<'_> {
             shifts,
             output,
             plugin_dirs,
+            plugins,
             defaults,
             rules,
         })
@@ -1019,7 +1030,7 @@ impl Check<'_> {
         out
     }
 
-    fn rule(&mut self, i: usize, raw: RawRule, registry: &Registry) -> RuleSpec {
+    fn rule(&mut self, i: usize, raw: RawRule, registry: &Registry, plugins: &PluginPlaces) -> RuleSpec {
         let key = format!("rules[{i}]");
         let (tags, settings, steps) = raw.split();
         let patterns = match tags {
@@ -1071,15 +1082,81 @@ impl Check<'_> {
             let mut out = Vec::with_capacity(steps.len());
             for (j, s) in steps.into_iter().enumerate() {
                 let skey = format!("{key}.steps[{j}]");
+                if s.name == "plugin" {
+                    let (params, plugin) = self.plugin_step(&skey, s.params, plugins);
+                    out.push(StepSpec { name: s.name, params, line: self.line(&skey), plugin });
+                    continue;
+                }
                 if let Err(e) = registry.make(&s.name, &s.params) {
                     self.fail(&skey, e);
                 }
-                out.push(StepSpec { name: s.name, params: s.params, line: self.line(&skey) });
+                out.push(StepSpec { name: s.name, params: s.params, line: self.line(&skey), plugin: None });
             }
             out
         });
         RuleSpec { line: self.line(&key), tags, settings, steps }
     }
+
+    /// A `plugin: {path, sha256, params}` step at `key`: loads and checks the
+    /// plugin and makes an instance with the parameters (so that `check`
+    /// reports bad parameters too). Returns the parameters and the plugin,
+    /// `None` after a problem (recorded).
+    fn plugin_step(
+        &mut self,
+        key: &str,
+        raw: serde_json::Value,
+        places: &PluginPlaces,
+    ) -> (serde_json::Value, Option<Arc<ExternalPlugin>>) {
+        #[derive(Deserialize)]
+        #[serde(deny_unknown_fields)]
+        struct RawPluginStep {
+            path: String,
+            sha256: String,
+            #[serde(default)]
+            params: serde_json::Value,
+        }
+        let r: RawPluginStep = match serde_json::from_value(raw) {
+            Ok(r) => r,
+            Err(e) => {
+                self.fail(
+                    &format!("{key}.plugin"),
+                    format!("step `plugin`: {e}; write `plugin: {{path: FILE, sha256: HEX, params: {{...}}}}`"),
+                );
+                return (serde_json::Value::Null, None);
+            }
+        };
+        if r.path.trim().is_empty() {
+            self.fail(&format!("{key}.plugin.path"), "empty path; give the plugin's file");
+            return (r.params, None);
+        }
+        // Relative to the pipeline file's directory, like plugins.allow.
+        let path = places.base.join(&r.path);
+        match external::load(&path, &r.sha256, places.allowed) {
+            Ok(plugin) => match plugin.step(&r.params) {
+                Ok(_) => (r.params, Some(plugin)),
+                Err(e) => {
+                    self.fail(&format!("{key}.plugin.params"), e);
+                    (r.params, None)
+                }
+            },
+            Err(e) => {
+                let at = match e {
+                    external::PluginError::BadSha256 { .. } | external::PluginError::HashMismatch { .. } => "sha256",
+                    _ => "path",
+                };
+                self.fail(&format!("{key}.plugin.{at}"), format!("plugin: {e}"));
+                (r.params, None)
+            }
+        }
+    }
+}
+
+/// Where the plugins of a pipeline are looked for.
+struct PluginPlaces<'a> {
+    /// The directory of the pipeline file.
+    base: &'a Path,
+    /// `plugins.allow`, resolved against `base`.
+    allowed: &'a [PathBuf],
 }
 
 #[cfg(test)]
@@ -1182,7 +1259,10 @@ rules:
         assert_eq!(r0.settings.uncertain_factor, Some(2.5));
         assert_eq!(r0.settings.group.as_ref().map(|g| g.id.as_str()), Some("rule1"));
         let steps = r0.steps.as_ref().unwrap();
-        assert_eq!(steps[0], StepSpec { name: "quality".into(), params: serde_json::Value::Null, line: 30 });
+        assert_eq!(
+            steps[0],
+            StepSpec { name: "quality".into(), params: serde_json::Value::Null, line: 30, plugin: None }
+        );
         assert_eq!(steps[1].params, serde_json::json!({"action": "reject"}));
         assert_eq!(steps[1].line, 31);
         let r1 = &s.rules[1];
@@ -1424,6 +1504,37 @@ rules:
             "version: 1\nplugins: {allow: [\"\"]}\nrules: [{tags: a}]\n",
             "2:",
             "plugins.allow[0]: empty directory name",
+        );
+    }
+
+    #[test]
+    fn plugin_step_errors() {
+        let step = |allow: &str, body: &str| {
+            format!("version: 1\n{allow}rules:\n  - tags: a\n    steps:\n      - quality\n      - plugin: {body}\n")
+        };
+        let sha = "0".repeat(64);
+        assert_err(
+            &step("", &format!("{{path: x.so, sha256: \"{sha}\"}}")),
+            "6:",
+            "rules[0].steps[1].plugin.path: plugin: no directory is allowed to hold plugins",
+        );
+        assert_err(
+            &step("plugins: {allow: [p]}\n", "{path: p/x.so, sha256: abc}"),
+            "7:",
+            "rules[0].steps[1].plugin.sha256: plugin: `abc` is not a SHA-256",
+        );
+        assert_err(
+            &step("plugins: {allow: [p]}\n", &format!("{{path: p/x.so, sha256: \"{sha}\", parms: {{}}}}")),
+            "7:",
+            "rules[0].steps[1].plugin: step `plugin`: unknown field `parms`",
+        );
+        assert_err(&step("", "{sha256: abc}"), "6:", "step `plugin`: missing field `path`");
+        assert_err(&step("plugins: {allow: [p]}\n", "{path: \" \", sha256: abc}"), "7:", "plugin.path: empty path");
+        // The file is looked for relative to the pipeline's directory.
+        assert_err(
+            &step("plugins: {allow: [p]}\n", &format!("{{path: p/x.so, sha256: \"{sha}\"}}")),
+            "7:",
+            "pipelines/p/x.so: cannot find the plugin",
         );
     }
 

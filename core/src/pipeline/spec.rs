@@ -2,8 +2,9 @@
 //! [`super::config`]; every field here has passed validation.
 
 use std::path::PathBuf;
+use std::sync::Arc;
 
-use crate::plugin::TagSettings;
+use crate::plugin::{ExternalPlugin, PluginInfo, Registry, Step, TagSettings};
 use crate::series::Sampling;
 use crate::ssm::ModelSpec;
 
@@ -22,6 +23,8 @@ pub struct PipelineSpec {
     /// `plugins.allow`, with relative ones joined to the directory of the
     /// pipeline file.
     pub plugin_dirs: Vec<PathBuf>,
+    /// The external plugins the steps name, each once, in file order.
+    pub plugins: Vec<PluginInfo>,
     /// Settings applied to every tag before the rules.
     pub defaults: PartialSettings,
     pub rules: Vec<RuleSpec>,
@@ -170,11 +173,25 @@ pub struct RuleSpec {
 /// A step as written in a rule.
 #[derive(Debug, Clone, PartialEq)]
 pub struct StepSpec {
+    /// The step's name; `plugin` for an external plugin.
     pub name: String,
-    /// Parameters (`null` when none were written).
+    /// Parameters (`null` when none were written); for a plugin, its `params`.
     pub params: serde_json::Value,
     /// Line in the pipeline file (1-based).
     pub line: usize,
+    /// The loaded plugin of a `plugin` step.
+    pub plugin: Option<Arc<ExternalPlugin>>,
+}
+
+impl StepSpec {
+    /// Makes the step: an instance of its plugin, or the registry's step of
+    /// that name. Built-in and external steps are the same [`Step`] to the engine.
+    pub fn make(&self, registry: &Registry) -> Result<Arc<dyn Step>, String> {
+        match &self.plugin {
+            Some(p) => p.step(&self.params),
+            None => registry.make(&self.name, &self.params),
+        }
+    }
 }
 
 /// Tag names and glob patterns (`*` any run of characters, `?` one

@@ -1,7 +1,8 @@
 //! Pipeline steps: the [`Step`] trait every cleaning step implements
 //! (built-in or loaded from an external plugin), the [`Registry`] that makes
-//! steps from their YAML name and parameters, and the built-in steps that need
-//! no model ([`QualityStep`], [`RangeStep`]).
+//! steps from their YAML name and parameters, the built-in steps that need
+//! no model ([`QualityStep`], [`RangeStep`]), and the loader of external
+//! plugins ([`external`]), whose steps implement the same trait.
 //!
 //! A step works on a [`TagWork`]: the tag's output table, the tag's resolved
 //! settings, a report the step may fill in (model, parameters) and the state
@@ -9,6 +10,7 @@
 //! against redundant transmitters) receives the whole group at once.
 
 pub mod builtin;
+pub mod external;
 pub mod survey;
 
 use std::collections::BTreeMap;
@@ -20,6 +22,7 @@ use crate::series::{Sampling, TagTable};
 use crate::ssm::ModelSpec;
 
 pub use builtin::{QualityStep, RangeStep};
+pub use external::{ExternalPlugin, ExternalStep, PluginError, PluginInfo};
 pub use survey::Survey;
 
 /// Settings of one tag after the pipeline's rules are resolved.

@@ -206,12 +206,12 @@ impl FillStep {
                         null_rows += 1;
                     }
                 }
-                Status::Rejected if self.params.replace && (short || t.fault[i] == Some(Fault::Noise)) => {
-                    if mean.is_finite() {
-                        t.status[i] = Status::Replaced;
-                        t.value[i] = mean;
-                        replaced += 1;
-                    }
+                Status::Rejected
+                    if self.params.replace && mean.is_finite() && (short || t.fault[i] == Some(Fault::Noise)) =>
+                {
+                    t.status[i] = Status::Replaced;
+                    t.value[i] = mean;
+                    replaced += 1;
                 }
                 Status::Rejected => t.std[i] = f64::NAN,
                 _ => {}
