@@ -229,7 +229,7 @@ pub fn find(
         let sm = f.smooth_with_outliers(cleaned, &clean.y).map_err(|e| e.to_string())?;
         Ok((sm.outlier.clone(), sm))
     };
-    let (o1, _) = spike_pass(&cleaned)?;
+    let (o1, sm1) = spike_pass(&cleaned)?;
     let prior = fault_at.clone();
     let is_spike =
         |o: &[f64], k: usize| obs.row[k].is_some() && prior[k].is_none() && o[k].is_finite() && o[k].abs() > cfg.spike;
@@ -239,7 +239,10 @@ pub fn find(
             second.drop_point(k);
         }
     }
-    let (o2, sm) = spike_pass(&second)?;
+    // The second pass changes nothing when it would leave out exactly the
+    // readings the first one did.
+    let same = (0..n).all(|k| second.y[k].is_nan() == cleaned.y[k].is_nan());
+    let (o2, sm) = if same { (o1, sm1) } else { spike_pass(&second)? };
     let mut cleaned = clean.clone();
     for k in 0..n {
         if !is_spike(&o2, k) {
