@@ -264,7 +264,9 @@ impl FaultsStep {
             let f = match &self.params.params {
                 Some(given) => Fitted::given(&spec, given).map_err(|e| self.fail(&tag, e))?,
                 None => {
-                    let start = fitted.as_ref().map(|f: &Fitted| f.params.clone());
+                    // Start from this round's predecessor, else from the
+                    // parameters the last run carried over for this model.
+                    let start = fitted.as_ref().map(|f: &Fitted| f.params.clone()).or_else(|| carried(work, &spec));
                     Fitted::fit_at_most(&spec, &mut obs, start, self.params.fit_points)
                         .map_err(|e| self.fail(&tag, e))?
                 }
@@ -283,6 +285,8 @@ impl FaultsStep {
         }
         let Some(fitted) = fitted else { return Ok(()) };
         fitted.to_report(&mut work.report);
+        work.state
+            .insert("faults".into(), serde_json::json!({"model": fitted.spec.to_string(), "params": fitted.params}));
         work.report.extra.insert("model_choice".into(), serde_json::json!(reason));
         if !findings.process_changes.is_empty() {
             work.report.extra.insert("process_changes".into(), serde_json::json!(findings.process_changes));
@@ -290,6 +294,16 @@ impl FaultsStep {
         apply_decisions(work, &findings, &self.params, ctx.index);
         Ok(())
     }
+}
+
+/// Parameters a previous run carried over (`state.faults`) for this model.
+fn carried(work: &TagWork, spec: &ModelSpec) -> Option<Vec<f64>> {
+    let st = work.state.get("faults")?;
+    if st.get("model")?.as_str()? != spec.to_string() {
+        return None;
+    }
+    let params: Vec<f64> = serde_json::from_value(st.get("params")?.clone()).ok()?;
+    (params.len() == spec.param_names().len() && spec.validate(&params).is_ok()).then_some(params)
 }
 
 /// Writes the findings into the table.

@@ -352,3 +352,18 @@ fn deletion_residual_equals_leaving_the_reading_out() {
         );
     }
 }
+
+#[test]
+fn fitted_parameters_are_carried_to_the_next_run() {
+    let mut w = work("FT-1", simulate(11, 3000), "local-level+arma(1,0)");
+    run(&mut w, serde_json::Value::Null, None);
+    let st = w.state["faults"].clone();
+    assert_eq!(st["model"], "local-level+arma(1,0)");
+    let mut next = work("FT-1", simulate(12, 3000), "local-level+arma(1,0)");
+    next.state.insert("faults".into(), st.clone());
+    assert!(carried(&next, &"local-level+arma(1,0)".parse().unwrap()).is_some());
+    // Carried parameters of another model are not used.
+    assert!(carried(&next, &"local-level".parse().unwrap()).is_none());
+    run(&mut next, serde_json::Value::Null, None);
+    assert!((next.report.params["sigma2.obs"] - 0.0025).abs() < 0.0012);
+}
