@@ -24,7 +24,10 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::sync::{Arc, OnceLock};
 
-use arrow_array::{ArrayRef, RecordBatch};
+use arrow_array::cast::AsArray;
+use arrow_array::types::{Float64Type, Int32Type};
+use arrow_array::{Array, ArrayRef, RecordBatch};
+use arrow_schema::DataType;
 use parquet::arrow::ArrowWriter;
 use tagwright::rng::Rng;
 
@@ -380,4 +383,25 @@ pub fn install_plugin(dir: &Path, crate_name: &str) -> (PathBuf, String) {
     }
     let sha = sha256_file(&to);
     (to, sha)
+}
+
+/// A string column of a read-back batch (plain or dictionary-encoded); null as `None`.
+pub fn column_strings(a: &ArrayRef) -> Vec<Option<String>> {
+    match a.data_type() {
+        DataType::Dictionary(_, _) => {
+            let d = a.as_dictionary::<Int32Type>();
+            let values = d.values().as_string::<i32>();
+            (0..d.len()).map(|i| d.key(i).map(|k| values.value(k).to_string())).collect()
+        }
+        _ => {
+            let s = a.as_string::<i32>();
+            (0..s.len()).map(|i| s.is_valid(i).then(|| s.value(i).to_string())).collect()
+        }
+    }
+}
+
+/// A float64 column of a read-back batch; null as `None`.
+pub fn column_floats(a: &ArrayRef) -> Vec<Option<f64>> {
+    let f = a.as_primitive::<Float64Type>();
+    (0..f.len()).map(|i| f.is_valid(i).then(|| f.value(i))).collect()
 }

@@ -57,32 +57,37 @@ pub fn gamma_p(a: f64, x: f64) -> f64 {
         }
         (sum.ln() + ln_pre).exp().min(1.0)
     } else {
-        // Continued fraction for Q(a, x).
-        let tiny = 1e-300;
-        let mut b = x + 1.0 - a;
-        let mut c = 1.0 / tiny;
-        let mut d = 1.0 / b;
-        let mut h = d;
-        for i in 1..10_000 {
-            let an = -(i as f64) * (i as f64 - a);
-            b += 2.0;
-            d = an * d + b;
-            if d.abs() < tiny {
-                d = tiny;
-            }
-            c = b + an / c;
-            if c.abs() < tiny {
-                c = tiny;
-            }
-            d = 1.0 / d;
-            let del = d * c;
-            h *= del;
-            if (del - 1.0).abs() < 1e-16 {
-                break;
-            }
-        }
-        (1.0 - (ln_pre.exp() * h)).max(0.0)
+        (1.0 - (ln_pre.exp() * gamma_q_fraction(a, x))).max(0.0)
     }
+}
+
+/// The continued fraction of Q(a, x) = 1 - P(a, x) without its prefactor
+/// x^a e^-x / Gamma(a) (modified Lentz; Press et al. 2007, §6.2), for x >= a + 1.
+fn gamma_q_fraction(a: f64, x: f64) -> f64 {
+    let tiny = 1e-300;
+    let mut b = x + 1.0 - a;
+    let mut c = 1.0 / tiny;
+    let mut d = 1.0 / b;
+    let mut h = d;
+    for i in 1..10_000 {
+        let an = -(i as f64) * (i as f64 - a);
+        b += 2.0;
+        d = an * d + b;
+        if d.abs() < tiny {
+            d = tiny;
+        }
+        c = b + an / c;
+        if c.abs() < tiny {
+            c = tiny;
+        }
+        d = 1.0 / d;
+        let del = d * c;
+        h *= del;
+        if (del - 1.0).abs() < 1e-16 {
+            break;
+        }
+    }
+    h
 }
 
 /// Chi-square distribution function with `k` degrees of freedom.
@@ -102,30 +107,7 @@ pub fn chi2_sf(x: f64, k: f64) -> f64 {
         1.0 - gamma_p(a, xx)
     } else {
         let ln_pre = -xx + a * xx.ln() - ln_gamma(a);
-        let tiny = 1e-300;
-        let mut b = xx + 1.0 - a;
-        let mut c = 1.0 / tiny;
-        let mut d = 1.0 / b;
-        let mut h = d;
-        for i in 1..10_000 {
-            let an = -(i as f64) * (i as f64 - a);
-            b += 2.0;
-            d = an * d + b;
-            if d.abs() < tiny {
-                d = tiny;
-            }
-            c = b + an / c;
-            if c.abs() < tiny {
-                c = tiny;
-            }
-            d = 1.0 / d;
-            let del = d * c;
-            h *= del;
-            if (del - 1.0).abs() < 1e-16 {
-                break;
-            }
-        }
-        (ln_pre.exp() * h).clamp(0.0, 1.0)
+        (ln_pre.exp() * gamma_q_fraction(a, xx)).clamp(0.0, 1.0)
     }
 }
 

@@ -8,14 +8,12 @@ use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
 use arrow_array::cast::AsArray;
-use arrow_array::types::{Float64Type, Int32Type, TimestampMicrosecondType};
-use arrow_array::{Array, ArrayRef};
-use arrow_schema::DataType;
+use arrow_array::types::TimestampMicrosecondType;
 use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
 use serde_json::Value;
 use tagwright::plugin::{external, StepContext, TagSettings, TagWork};
 use tagwright::series::{Quality, ReadCounts, Sampling, Status, TagSeries, TagTable};
-use tagwright_tests::{install_plugin, rfc3339, tagwright, Sandbox, T0_US};
+use tagwright_tests::{column_floats, column_strings, install_plugin, rfc3339, tagwright, Sandbox, T0_US};
 
 const HAMPEL: &str = "tagwright-hampel-plugin";
 const MISBEHAVE: &str = "tagwright-test-plugin-misbehave";
@@ -60,34 +58,15 @@ fn run(sb: &Sandbox, pipeline: &Path, input: &Path, out: &str) -> tagwright_test
 /// The rows of cleaned.parquet: (tag, ts) -> (raw, value, status, fault).
 type Rows = BTreeMap<(String, i64), (Option<f64>, Option<f64>, String, Option<String>)>;
 
-fn strings(a: &ArrayRef) -> Vec<Option<String>> {
-    match a.data_type() {
-        DataType::Dictionary(_, _) => {
-            let d = a.as_dictionary::<Int32Type>();
-            let values = d.values().as_string::<i32>();
-            (0..d.len()).map(|i| d.key(i).map(|k| values.value(k).to_string())).collect()
-        }
-        _ => {
-            let s = a.as_string::<i32>();
-            (0..s.len()).map(|i| s.is_valid(i).then(|| s.value(i).to_string())).collect()
-        }
-    }
-}
-
-fn floats(a: &ArrayRef) -> Vec<Option<f64>> {
-    let f = a.as_primitive::<Float64Type>();
-    (0..f.len()).map(|i| f.is_valid(i).then(|| f.value(i))).collect()
-}
-
 fn read_rows(path: &Path) -> Rows {
     let reader = ParquetRecordBatchReaderBuilder::try_new(std::fs::File::open(path).unwrap()).unwrap().build().unwrap();
     let mut rows = Rows::new();
     for batch in reader {
         let b = batch.unwrap();
-        let tag = strings(b.column(0));
+        let tag = column_strings(b.column(0));
         let ts = b.column(1).as_primitive::<TimestampMicrosecondType>().values().to_vec();
-        let (raw, value) = (floats(b.column(2)), floats(b.column(3)));
-        let (status, fault) = (strings(b.column(5)), strings(b.column(6)));
+        let (raw, value) = (column_floats(b.column(2)), column_floats(b.column(3)));
+        let (status, fault) = (column_strings(b.column(5)), column_strings(b.column(6)));
         for i in 0..b.num_rows() {
             rows.insert(
                 (tag[i].clone().unwrap(), ts[i]),

@@ -5,12 +5,11 @@ use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
 use arrow_array::cast::AsArray;
-use arrow_array::types::{Float64Type, Int32Type, TimestampMicrosecondType};
-use arrow_array::{Array, ArrayRef};
+use arrow_array::types::TimestampMicrosecondType;
 use arrow_schema::{DataType, TimeUnit};
 use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
 use serde_json::Value;
-use tagwright_tests::{rfc3339, tagwright, Sandbox, T0_US};
+use tagwright_tests::{column_floats, column_strings, rfc3339, tagwright, Sandbox, T0_US};
 
 const PIPELINE: &str = r#"version: 1
 site: {timezone: UTC}
@@ -61,25 +60,6 @@ struct Cleaned {
     metadata: BTreeMap<String, String>,
 }
 
-fn strings(a: &ArrayRef) -> Vec<Option<String>> {
-    match a.data_type() {
-        DataType::Dictionary(_, _) => {
-            let d = a.as_dictionary::<Int32Type>();
-            let values = d.values().as_string::<i32>();
-            (0..d.len()).map(|i| d.key(i).map(|k| values.value(k).to_string())).collect()
-        }
-        _ => {
-            let s = a.as_string::<i32>();
-            (0..s.len()).map(|i| s.is_valid(i).then(|| s.value(i).to_string())).collect()
-        }
-    }
-}
-
-fn floats(a: &ArrayRef) -> Vec<Option<f64>> {
-    let f = a.as_primitive::<Float64Type>();
-    (0..f.len()).map(|i| f.is_valid(i).then(|| f.value(i))).collect()
-}
-
 fn read_cleaned(path: &Path) -> Cleaned {
     let file = std::fs::File::open(path).unwrap();
     let builder = ParquetRecordBatchReaderBuilder::try_new(file).unwrap();
@@ -104,14 +84,14 @@ fn read_cleaned(path: &Path) -> Cleaned {
     };
     for batch in builder.build().unwrap() {
         let b = batch.unwrap();
-        c.tag.extend(strings(b.column(0)).into_iter().map(|s| s.unwrap()));
+        c.tag.extend(column_strings(b.column(0)).into_iter().map(|s| s.unwrap()));
         let ts = b.column(1).as_primitive::<TimestampMicrosecondType>();
         c.ts.extend(ts.values().iter());
-        c.raw.extend(floats(b.column(2)));
-        c.value.extend(floats(b.column(3)));
-        c.std.extend(floats(b.column(4)));
-        c.status.extend(strings(b.column(5)).into_iter().map(|s| s.unwrap()));
-        c.fault.extend(strings(b.column(6)));
+        c.raw.extend(column_floats(b.column(2)));
+        c.value.extend(column_floats(b.column(3)));
+        c.std.extend(column_floats(b.column(4)));
+        c.status.extend(column_strings(b.column(5)).into_iter().map(|s| s.unwrap()));
+        c.fault.extend(column_strings(b.column(6)));
     }
     c
 }

@@ -193,24 +193,17 @@ pub fn find(
     let noisy =
         if table.sampling == Sampling::Regular { noise_windows(&g.e, &obs.row, cfg) } else { vec![(0.0, 0.0); n] };
     for (k, &(stat, bound)) in noisy.iter().enumerate() {
-        if let (Some((stat, bound)), Some(row)) = ((stat > 0.0).then_some((stat, bound)), obs.row[k]) {
-            if fault_at[k].is_none() && g.e[k].is_finite() {
-                if in_transient(k) || near_plant_change(k) {
-                    vetoed += 1;
-                    continue;
-                }
-                fault_at[k] = Some(Fault::Noise);
-                out.exclude.push(k);
-                out.decisions.push(Decision {
-                    row,
-                    fault: Fault::Noise,
-                    stat,
-                    threshold: bound,
-                    size: 0.0,
-                    size_sd: 0.0,
-                });
-            }
+        let Some(row) = obs.row[k] else { continue };
+        if stat <= 0.0 || fault_at[k].is_some() || !g.e[k].is_finite() {
+            continue;
         }
+        if in_transient(k) || near_plant_change(k) {
+            vetoed += 1;
+            continue;
+        }
+        fault_at[k] = Some(Fault::Noise);
+        out.exclude.push(k);
+        out.decisions.push(Decision { row, fault: Fault::Noise, stat, threshold: bound, size: 0.0, size_sd: 0.0 });
     }
 
     // 4. Spikes. The online gate keeps the filter clean; the verdict is the
@@ -226,8 +219,8 @@ pub fn find(
         }
     }
     let spike_pass = |cleaned: &TagObs| -> Result<(Vec<f64>, tagwright::tagmodel::Smoothed), String> {
-        let sm = f.smooth_with_outliers(cleaned, &clean.y).map_err(|e| e.to_string())?;
-        Ok((sm.outlier.clone(), sm))
+        let mut sm = f.smooth_with_outliers(cleaned, &clean.y).map_err(|e| e.to_string())?;
+        Ok((std::mem::take(&mut sm.outlier), sm))
     };
     let (o1, sm1) = spike_pass(&cleaned)?;
     let prior = fault_at.clone();
