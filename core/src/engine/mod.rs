@@ -194,31 +194,60 @@ pub fn run(
     let mut pending: BTreeMap<String, TagResult> = BTreeMap::new();
     let mut next = 0usize;
     let total = units.len();
-    for (ci, batch) in units.chunks(chunk).enumerate() {
-        let names: Vec<String> = batch.iter().flat_map(|u| u.tags.iter().map(|(t, _)| t.clone())).collect();
-        let series = input.read_tags(&names).map_err(EngineError::Input)?;
-        let mut by_tag: BTreeMap<String, TagSeries> = series.into_iter().map(|s| (s.tag.clone(), s)).collect();
-        let jobs: Vec<(&Unit, Vec<TagSeries>, Vec<StepState>)> = batch
-            .iter()
-            .map(|u| {
-                let s: Vec<TagSeries> = u.tags.iter().filter_map(|(t, _)| by_tag.remove(t)).collect();
-                let st = u.tags.iter().map(|(t, _)| state_in.remove(t).unwrap_or_default()).collect();
-                (u, s, st)
-            })
-            .collect();
-        let results: Vec<Vec<TagResult>> =
-            pool.install(|| jobs.into_par_iter().map(|(u, s, st)| run_unit(u, s, st, survey.as_ref())).collect());
-        for r in results.into_iter().flatten() {
-            pending.insert(r.table.tag.clone(), r);
+    let chunk_names: Vec<Vec<String>> =
+        units.chunks(chunk).map(|b| b.iter().flat_map(|u| u.tags.iter().map(|(t, _)| t.clone())).collect()).collect();
+    // With more than one thread, the next chunk is read (decoded) on a
+    // reader thread while this one is cleaned and written.
+    let read_ahead = pool.current_num_threads() > 1;
+    std::thread::scope(|scope| -> Result<(), EngineError> {
+        let (tx, rx) = std::sync::mpsc::sync_channel::<crate::io::Result<Vec<TagSeries>>>(1);
+        if read_ahead {
+            let (input, chunk_names) = (&input, &chunk_names);
+            std::thread::Builder::new()
+                .name("tagwright-reader".into())
+                .spawn_scoped(scope, move || {
+                    for names in chunk_names {
+                        let r = input.read_tags(names);
+                        let failed = r.is_err();
+                        // The receiver is gone when the run stopped early.
+                        if tx.send(r).is_err() || failed {
+                            break;
+                        }
+                    }
+                })
+                .map_err(|e| EngineError::Threads(e.to_string()))?;
         }
-        while next < selected.len() {
-            let Some(r) = pending.remove(&selected[next]) else { break };
-            write_result(&r, &mut writer, &mut prov, &mut outcome).map_err(EngineError::Output)?;
-            state_out.insert(r.table.tag.clone(), r.state);
-            next += 1;
+        for (ci, (batch, names)) in units.chunks(chunk).zip(&chunk_names).enumerate() {
+            let series = if read_ahead {
+                rx.recv().map_err(|_| EngineError::Threads("the reader thread stopped".into()))?
+            } else {
+                input.read_tags(names)
+            }
+            .map_err(EngineError::Input)?;
+            let mut by_tag: BTreeMap<String, TagSeries> = series.into_iter().map(|s| (s.tag.clone(), s)).collect();
+            let jobs: Vec<(&Unit, Vec<TagSeries>, Vec<StepState>)> = batch
+                .iter()
+                .map(|u| {
+                    let s: Vec<TagSeries> = u.tags.iter().filter_map(|(t, _)| by_tag.remove(t)).collect();
+                    let st = u.tags.iter().map(|(t, _)| state_in.remove(t).unwrap_or_default()).collect();
+                    (u, s, st)
+                })
+                .collect();
+            let results: Vec<Vec<TagResult>> =
+                pool.install(|| jobs.into_par_iter().map(|(u, s, st)| run_unit(u, s, st, survey.as_ref())).collect());
+            for r in results.into_iter().flatten() {
+                pending.insert(r.table.tag.clone(), r);
+            }
+            while next < selected.len() {
+                let Some(r) = pending.remove(&selected[next]) else { break };
+                write_result(&r, &mut writer, &mut prov, &mut outcome).map_err(EngineError::Output)?;
+                state_out.insert(r.table.tag.clone(), r.state);
+                next += 1;
+            }
+            progress(((ci + 1) * chunk).min(total), total);
         }
-        progress(((ci + 1) * chunk).min(total), total);
-    }
+        Ok(())
+    })?;
     // Tags whose results never came (a read returned nothing for them).
     while next < selected.len() {
         if let Some(r) = pending.remove(&selected[next]) {
