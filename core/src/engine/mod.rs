@@ -240,8 +240,7 @@ pub fn run(
             }
             while next < selected.len() {
                 let Some(r) = pending.remove(&selected[next]) else { break };
-                write_result(&r, &mut writer, &mut prov, &mut outcome).map_err(EngineError::Output)?;
-                state_out.insert(r.table.tag.clone(), r.state);
+                write_result(r, &mut writer, &mut prov, &mut outcome, &mut state_out).map_err(EngineError::Output)?;
                 next += 1;
             }
             progress(((ci + 1) * chunk).min(total), total);
@@ -251,8 +250,7 @@ pub fn run(
     // Tags whose results never came (a read returned nothing for them).
     while next < selected.len() {
         if let Some(r) = pending.remove(&selected[next]) {
-            write_result(&r, &mut writer, &mut prov, &mut outcome).map_err(EngineError::Output)?;
-            state_out.insert(r.table.tag.clone(), r.state);
+            write_result(r, &mut writer, &mut prov, &mut outcome, &mut state_out).map_err(EngineError::Output)?;
         }
         next += 1;
     }
@@ -393,13 +391,15 @@ fn run_chain(unit: &Unit, works: &mut [TagWork], survey: Option<&Survey>) -> Opt
     None
 }
 
+/// Records a tag's result (summary, provenance, carried state) and hands
+/// its table to the writer.
 fn write_result(
-    r: &TagResult,
+    r: TagResult,
     writer: &mut CleanedWriter,
     prov: &mut provenance::Body,
     outcome: &mut RunOutcome,
+    state_out: &mut BTreeMap<String, StepState>,
 ) -> Result<(), IoError> {
-    writer.write_tag(&r.table)?;
     let evs = if r.error.is_none() { events(&r.table, &r.step_names) } else { Vec::new() };
     let mut by_status = [0u64; 4];
     let mut faults: BTreeMap<&'static str, u64> = BTreeMap::new();
@@ -420,11 +420,12 @@ fn write_result(
         Some(e) => outcome.tags_failed.push((r.table.tag.clone(), e.clone())),
         None => outcome.tags_processed += 1,
     }
-    prov.tag(r, &by_status, &faults);
+    prov.tag(&r, &by_status, &faults);
     for e in &evs {
         prov.event(e);
     }
-    Ok(())
+    state_out.insert(r.table.tag.clone(), r.state);
+    writer.write_tag_owned(r.table)
 }
 
 /// Statuses in output order, for summaries.

@@ -45,7 +45,7 @@ use parquet::schema::types::ColumnPath;
 use super::output_encode::{spawn, Buffer, Encoder, Worker};
 use super::{IoError, Result};
 use crate::pipeline::Compression;
-use crate::series::{Status, TagTable};
+use crate::series::TagTable;
 
 /// Rows per row group of `cleaned.parquet` (about one million).
 pub const ROW_GROUP_ROWS: usize = 1 << 20;
@@ -182,6 +182,27 @@ impl CleanedWriter {
     /// Appends one tag's rows. Tags must come in sorted order, each once;
     /// rows in strictly increasing time; all columns of equal length.
     pub fn write_tag(&mut self, t: &TagTable) -> Result<()> {
+        self.check(t)?;
+        self.append(t)
+    }
+
+    /// As [`CleanedWriter::write_tag`], taking the table: a tag of at least
+    /// half a batch goes to the encoder as it is, its columns moved rather
+    /// than copied into the buffer.
+    pub fn write_tag_owned(&mut self, t: TagTable) -> Result<()> {
+        self.check(&t)?;
+        let n = t.ts_us.len();
+        if n < BATCH_ROWS / 2 {
+            return self.append(&t);
+        }
+        // Rows buffered before this tag go first.
+        self.flush()?;
+        self.rows += n as u64;
+        self.send(Buffer::from_table(t))
+    }
+
+    /// Checks a table before it is written; remembers its tag.
+    fn check(&mut self, t: &TagTable) -> Result<()> {
         let bad = |reason: String| IoError::BadTable { path: self.path.clone(), tag: t.tag.clone(), reason };
         let n = t.ts_us.len();
         let lens = [t.raw.len(), t.value.len(), t.std.len(), t.status.len(), t.fault.len()];
@@ -200,20 +221,20 @@ impl CleanedWriter {
             return Err(bad(format!("times do not increase at row {i}")));
         }
         self.last_tag = Some(t.tag.clone());
+        Ok(())
+    }
+
+    /// Copies a checked table into the buffer, handing the buffer on first
+    /// when the rows would not fit in it.
+    fn append(&mut self, t: &TagTable) -> Result<()> {
+        let n = t.ts_us.len();
         if n == 0 {
             return Ok(());
         }
-        let key = self.buf.tags.len() as i32;
-        self.buf.tags.push(t.tag.clone());
-        let b = &mut self.buf;
-        b.tag_keys.extend(std::iter::repeat_n(key, n));
-        b.ts.extend_from_slice(&t.ts_us);
-        b.raw.extend_from_slice(&t.raw);
-        b.raw_null.extend(t.status.iter().map(|&s| s == Status::Filled));
-        b.value.extend_from_slice(&t.value);
-        b.std.extend_from_slice(&t.std);
-        b.status.extend(t.status.iter().map(|&s| s as i32));
-        b.fault.extend(t.fault.iter().map(|f| f.map(|f| f as i32)));
+        if self.buf.len() > 0 && self.buf.len() + n > self.buf.ts.capacity() {
+            self.flush()?;
+        }
+        self.buf.push_table(t);
         self.rows += n as u64;
         if self.buf.len() >= BATCH_ROWS {
             self.flush()?;
@@ -227,6 +248,11 @@ impl CleanedWriter {
             return Ok(());
         }
         let b = std::mem::replace(&mut self.buf, Buffer::with_capacity(BATCH_ROWS + BATCH_ROWS / 8));
+        self.send(b)
+    }
+
+    /// Encodes a buffer (inline) or sends it to the encoding thread.
+    fn send(&mut self, b: Buffer) -> Result<()> {
         if let Some(enc) = self.inline.as_mut() {
             return enc.push(b);
         }

@@ -27,7 +27,7 @@ use parquet::file::writer::SerializedFileWriter;
 
 use super::output::ROW_GROUP_ROWS;
 use super::{IoError, Result};
-use crate::series::{Fault, Status};
+use crate::series::{Fault, Status, TagTable};
 
 /// Columns encoded on the helper thread: `tag`, `raw`, `fault`; the worker
 /// encodes `ts`, `value`, `std`, `status`. (The dictionary column `tag`
@@ -56,6 +56,37 @@ pub(super) struct Buffer {
 impl Buffer {
     pub(super) fn len(&self) -> usize {
         self.ts.len()
+    }
+
+    /// One tag's table as a buffer, its columns moved, not copied.
+    pub(super) fn from_table(t: TagTable) -> Buffer {
+        let n = t.ts_us.len();
+        Buffer {
+            tags: vec![t.tag],
+            tag_keys: vec![0; n],
+            raw_null: t.status.iter().map(|&s| s == Status::Filled).collect(),
+            status: t.status.iter().map(|&s| s as i32).collect(),
+            fault: t.fault.iter().map(|f| f.map(|f| f as i32)).collect(),
+            ts: t.ts_us,
+            raw: t.raw,
+            value: t.value,
+            std: t.std,
+        }
+    }
+
+    /// Appends a copy of one tag's rows.
+    pub(super) fn push_table(&mut self, t: &TagTable) {
+        let n = t.ts_us.len();
+        let key = self.tags.len() as i32;
+        self.tags.push(t.tag.clone());
+        self.tag_keys.extend(std::iter::repeat_n(key, n));
+        self.ts.extend_from_slice(&t.ts_us);
+        self.raw.extend_from_slice(&t.raw);
+        self.raw_null.extend(t.status.iter().map(|&s| s == Status::Filled));
+        self.value.extend_from_slice(&t.value);
+        self.std.extend_from_slice(&t.std);
+        self.status.extend(t.status.iter().map(|&s| s as i32));
+        self.fault.extend(t.fault.iter().map(|f| f.map(|f| f as i32)));
     }
 
     /// An empty buffer with room for `n` rows.

@@ -12,7 +12,7 @@ use parquet::file::reader::{FileReader, SerializedFileReader};
 use proptest::prelude::*;
 
 use super::*;
-use crate::series::{Fault, Quality, ReadCounts, Sampling, TagSeries};
+use crate::series::{Fault, Quality, ReadCounts, Sampling, Status, TagSeries};
 
 /// One row as read back: tag, ts, raw, value, std, status, fault.
 /// (`raw` as bits, so that a NaN reading compares equal to itself.)
@@ -142,10 +142,43 @@ fn round_trip_schema_metadata_and_encodings() {
             "raw" | "value" | "std" => assert!(enc.contains(&Encoding::BYTE_STREAM_SPLIT), "{name}: {enc:?}"),
             _ => {}
         }
-        if ["ts", "raw", "value", "std"].contains(&name.as_str()) {
+        if ["ts", "raw", "value", "std", "status"].contains(&name.as_str()) {
             assert!(!enc.contains(&Encoding::RLE_DICTIONARY), "{name}: {enc:?}");
         }
+        // Statistics only for the columns a reader prunes by.
+        assert_eq!(c.statistics().is_some(), ["tag", "ts"].contains(&name.as_str()), "{name}: statistics");
     }
+}
+
+#[test]
+fn handing_tables_over_writes_the_same_rows_as_copying_them() {
+    // Small tags are buffered (copied), large ones handed over whole; a
+    // large tag after buffered small ones must not overtake them.
+    let dir = tempfile::tempdir().unwrap();
+    let sizes = [5, BATCH_ROWS / 2 + 3, 17, 40, BATCH_ROWS + 9, 0, BATCH_ROWS / 2 - 1, 2 * BATCH_ROWS];
+    let tables: Vec<TagTable> = sizes.iter().enumerate().map(|(k, &n)| table(&format!("T{k:02}"), n)).collect();
+    let mut files = Vec::new();
+    for (name, owned, threads) in [("copy", false, 2), ("owned", true, 2), ("owned1", true, 1)] {
+        let path = dir.path().join(format!("{name}.parquet"));
+        let mut w = CleanedWriter::create_with_threads(&path, "r", Compression::Zstd, threads).unwrap();
+        for t in &tables {
+            if owned {
+                w.write_tag_owned(t.clone()).unwrap();
+            } else {
+                w.write_tag(t).unwrap();
+            }
+        }
+        assert_eq!(w.close().unwrap(), sizes.iter().sum::<usize>() as u64);
+        files.push(std::fs::read(&path).unwrap());
+        assert_eq!(read_back(&path).1, expected_rows(&tables), "{name}: rows");
+    }
+    // Page boundaries follow the batches, so the two paths may differ in
+    // bytes; each is the same whatever the thread count.
+    assert!(files[1] == files[2], "same bytes from 1 and 2 threads");
+    // The owned path checks the contract as the copying one does.
+    let mut w = CleanedWriter::create(&dir.path().join("bad.parquet"), "r", Compression::Zstd).unwrap();
+    w.write_tag_owned(table("B", BATCH_ROWS)).unwrap();
+    assert!(matches!(w.write_tag_owned(table("A", BATCH_ROWS)), Err(IoError::BadTable { .. })));
 }
 
 #[test]
