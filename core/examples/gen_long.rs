@@ -4,8 +4,14 @@
 //! sorted by tag then time, as a historian export usually is.
 //!
 //! ```text
-//! cargo run --release -p tagwright --example gen_long -- TAGS HOURS OUT.parquet
+//! cargo run --release -p tagwright --example gen_long -- TAGS HOURS OUT.parquet [--unit-scale]
 //! ```
+//!
+//! Each tag gets its own level and scale (0.5 to 2.5): x_t = 0.995 x_{t-1} +
+//! 0.1 s eta_t, value = level + x_t + 0.05 s eps_t. With `--unit-scale`
+//! every tag has s = 1, so one set of model parameters is right for all of
+//! them (sigma2.obs 0.0025, phi 0.995, sigma2.arma 0.01, no level wander):
+//! the case of parameters known from earlier shifts.
 //!
 //! Columns: `tag` (dictionary string), `ts` (timestamp[us, UTC]), `value`
 //! (float64: a slow AR(1) wander plus noise, with rare NaN), `quality`
@@ -36,9 +42,11 @@ fn main() {
 }
 
 fn run() -> Result<(), Box<dyn std::error::Error>> {
-    let args: Vec<String> = std::env::args().skip(1).collect();
+    let mut args: Vec<String> = std::env::args().skip(1).collect();
+    let unit_scale = args.iter().any(|a| a == "--unit-scale");
+    args.retain(|a| a != "--unit-scale");
     let [tags, hours, out] = args.as_slice() else {
-        return Err("usage: gen_long TAGS HOURS OUT.parquet".into());
+        return Err("usage: gen_long TAGS HOURS OUT.parquet [--unit-scale]".into());
     };
     let n_tags: usize = tags.parse().map_err(|_| format!("TAGS `{tags}` is not a whole number"))?;
     let hours: f64 = hours.parse().map_err(|_| format!("HOURS `{hours}` is not a number"))?;
@@ -61,7 +69,8 @@ fn run() -> Result<(), Box<dyn std::error::Error>> {
     let started = std::time::Instant::now();
     for name in &names {
         let level = 10.0 + 90.0 * rng.uniform();
-        let scale = 0.5 + 2.0 * rng.uniform();
+        let drawn = 0.5 + 2.0 * rng.uniform();
+        let scale = if unit_scale { 1.0 } else { drawn };
         let mut x = 0.0;
         buf.tags.push(name.clone());
         for i in 0..per_tag {

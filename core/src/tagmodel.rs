@@ -195,18 +195,8 @@ impl TagObs {
     /// lets the state evolve over the skipped time exactly. `None` when the
     /// whole window has no more than `max_points` observations.
     pub fn subsample(&self, max_points: usize, blocks: usize) -> Option<TagObs> {
-        let observed = self.observed();
-        if observed <= max_points || blocks == 0 {
-            return None;
-        }
+        let (len, stride) = self.sample_layout(max_points, blocks)?;
         let n = self.len();
-        let per_block = (max_points / blocks).max(16);
-        // Block length in grid points, scaled by the share of observed points.
-        let len = ((per_block as f64) * n as f64 / observed as f64).ceil() as usize;
-        let stride = n / blocks;
-        if len >= stride {
-            return None;
-        }
         let mut o = TagObs::default();
         for b in 0..blocks {
             let start = b * stride + (stride - len) / 2;
@@ -222,11 +212,45 @@ impl TagObs {
         Some(o)
     }
 
+    /// The grid points [`TagObs::subsample`] keeps, block by block; `None`
+    /// when it keeps them all.
+    pub fn sample_ranges(&self, max_points: usize, blocks: usize) -> Option<Vec<std::ops::Range<usize>>> {
+        let (len, stride) = self.sample_layout(max_points, blocks)?;
+        Some(
+            (0..blocks)
+                .map(|b| {
+                    let start = b * stride + (stride - len) / 2;
+                    start..start + len
+                })
+                .collect(),
+        )
+    }
+
+    /// Block length and stride (grid points) of a subsample, if one is taken.
+    fn sample_layout(&self, max_points: usize, blocks: usize) -> Option<(usize, usize)> {
+        let observed = self.observed();
+        if observed <= max_points || blocks == 0 {
+            return None;
+        }
+        let n = self.len();
+        let per_block = (max_points / blocks).max(16);
+        // Block length in grid points, scaled by the share of observed points.
+        let len = ((per_block as f64) * n as f64 / observed as f64).ceil() as usize;
+        let stride = n / blocks;
+        if len >= stride {
+            return None;
+        }
+        Some((len, stride))
+    }
+
     /// Marks grid point `k` missing.
     pub fn drop_point(&mut self, k: usize) {
         self.y[k] = f64::NAN;
     }
 }
+
+/// Blocks of the subsample [`Fitted::fit_at_most`] fits a long window on.
+pub const FIT_BLOCKS: usize = 8;
 
 /// A fitted (or given) model of one tag.
 #[derive(Debug, Clone)]
@@ -253,7 +277,8 @@ impl Fitted {
     }
 
     /// [`Fitted::fit`] on at most `max_points` observations: a longer window
-    /// is fitted on [`TagObs::subsample`] (8 blocks), and the deadband
+    /// is fitted on [`TagObs::subsample`] ([`FIT_BLOCKS`] blocks; the points
+    /// are [`TagObs::sample_ranges`]), and the deadband
     /// variances of the whole window are then set at the fitted noise level.
     pub fn fit_at_most(
         spec: &ModelSpec,
@@ -261,7 +286,7 @@ impl Fitted {
         start: Option<Vec<f64>>,
         max_points: usize,
     ) -> Result<Fitted, ModelError> {
-        match obs.subsample(max_points, 8) {
+        match obs.subsample(max_points, FIT_BLOCKS) {
             Some(mut sub) => {
                 let f = Self::fit_all(spec, &mut sub, start)?;
                 obs.set_noise(f.obs_noise());

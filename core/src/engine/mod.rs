@@ -188,7 +188,7 @@ pub fn run(
         if pool.current_num_threads() == 1 { 1 } else { 2 },
     )
     .map_err(EngineError::Output)?;
-    let mut prov = provenance::Body::new();
+    let mut prov = provenance::Body::new(out.path("provenance.body.partial")).map_err(EngineError::Output)?;
 
     // Results wait here until every tag before them in sorted order is written.
     let mut pending: BTreeMap<String, TagResult> = BTreeMap::new();

@@ -3,8 +3,8 @@
 //! records. Field names are documented in `docs/outputs.md`.
 
 use std::collections::BTreeMap;
-use std::io::Write;
-use std::path::Path;
+use std::io::{Seek, Write};
+use std::path::{Path, PathBuf};
 
 use chrono::{DateTime, SecondsFormat, Utc};
 use serde_json::{json, Map, Value};
@@ -29,21 +29,37 @@ fn num(v: f64) -> Value {
     serde_json::Number::from_f64(v).map(Value::Number).unwrap_or(Value::Null)
 }
 
-/// The tag and event lines, collected in output order.
+/// The tag and event lines, in output order. They go to a spill file in
+/// the staging directory as they come (the run record, written first in
+/// `provenance.jsonl`, is known only at the end), so the memory a run holds
+/// does not grow with the number of tags and events.
 pub(super) struct Body {
-    lines: Vec<u8>,
+    spill: PathBuf,
+    out: std::io::BufWriter<std::fs::File>,
+    /// The first write error, reported by [`Body::write`].
+    error: Option<std::io::Error>,
 }
 
 impl Body {
-    pub(super) fn new() -> Self {
-        Body { lines: Vec::new() }
+    pub(super) fn new(spill: PathBuf) -> Result<Self, IoError> {
+        let f = std::fs::OpenOptions::new()
+            .read(true)
+            .write(true)
+            .create(true)
+            .truncate(true)
+            .open(&spill)
+            .map_err(|e| IoError::Write { path: spill.clone(), source: e.into() })?;
+        Ok(Body { spill, out: std::io::BufWriter::with_capacity(1 << 16, f), error: None })
     }
 
     fn push(&mut self, v: &Value) {
+        if self.error.is_some() {
+            return;
+        }
         // Serialising a Value built here cannot fail.
-        if let Ok(s) = serde_json::to_string(v) {
-            self.lines.extend_from_slice(s.as_bytes());
-            self.lines.push(b'\n');
+        let line = serde_json::to_vec(v).unwrap_or_default();
+        if let Err(e) = self.out.write_all(&line).and_then(|()| self.out.write_all(b"\n")) {
+            self.error = Some(e);
         }
     }
 
@@ -97,15 +113,25 @@ impl Body {
         }));
     }
 
-    /// Writes the run record and then the collected lines.
-    pub(super) fn write(&self, path: &Path, run: &Value) -> Result<(), IoError> {
+    /// Writes the run record and then the spilled lines to `path`, and
+    /// removes the spill file.
+    pub(super) fn write(self, path: &Path, run: &Value) -> Result<(), IoError> {
+        let Body { spill, out, error } = self;
+        let spill_err = |e: std::io::Error| IoError::Write { path: spill.clone(), source: e.into() };
+        if let Some(e) = error {
+            return Err(spill_err(e));
+        }
+        let mut body = out.into_inner().map_err(|e| spill_err(e.into_error()))?;
+        body.seek(std::io::SeekFrom::Start(0)).map_err(spill_err)?;
         let io_err = |e: std::io::Error| IoError::Write { path: path.to_path_buf(), source: e.into() };
         let mut f = std::io::BufWriter::new(std::fs::File::create(path).map_err(io_err)?);
         let head = serde_json::to_string(run).unwrap_or_default();
         f.write_all(head.as_bytes()).map_err(io_err)?;
         f.write_all(b"\n").map_err(io_err)?;
-        f.write_all(&self.lines).map_err(io_err)?;
+        std::io::copy(&mut body, &mut f).map_err(io_err)?;
         f.flush().map_err(io_err)?;
+        drop(body);
+        std::fs::remove_file(&spill).map_err(spill_err)?;
         Ok(())
     }
 }

@@ -37,7 +37,7 @@ use serde::Deserialize;
 use tagwright::plugin::{parse_params, Registry, Step, StepContext, StepError, TagWork};
 use tagwright::series::{Fault, Status};
 use tagwright::ssm::ModelSpec;
-use tagwright::tagmodel::{model_for, Fitted, TagObs};
+use tagwright::tagmodel::{model_for, Fitted, TagObs, FIT_BLOCKS};
 
 pub use detect::{Decision, Findings};
 
@@ -253,6 +253,7 @@ impl FaultsStep {
         let mut excluded = vec![false; base.len()];
         let mut fitted: Option<Fitted> = None;
         let mut findings = Findings::default();
+        let mut rounds_run = 0;
         let rounds = if self.params.params.is_some() { 1 } else { self.params.rounds };
         for round in 0..rounds {
             let mut obs = base.clone();
@@ -261,6 +262,8 @@ impl FaultsStep {
                     obs.drop_point(k);
                 }
             }
+            // The readings this round's fit sees (all, or a subsample).
+            let sample = obs.sample_ranges(self.params.fit_points, FIT_BLOCKS);
             let f = match &self.params.params {
                 Some(given) => Fitted::given(&spec, given).map_err(|e| self.fail(&tag, e))?,
                 None => {
@@ -277,9 +280,20 @@ impl FaultsStep {
             all.set_noise(f.obs_noise());
             findings = detect::find(&f, &all, table, &cfg, ctx.survey, &tag).map_err(|e| self.fail(&tag, e))?;
             fitted = Some(f);
+            rounds_run = round + 1;
             let before = excluded.iter().filter(|&&x| x).count();
-            excluded = findings.excluded(all.len());
-            if round > 0 && excluded.iter().filter(|&&x| x).count() == before {
+            let next = findings.excluded(all.len());
+            // The next fit would see the same readings when no reading of
+            // this fit's sample changed its verdict: it would give the same
+            // model, so the rounds end (a fault outside the sample cannot
+            // have inflated the estimates).
+            let changed = |k: usize| next.get(k) != excluded.get(k);
+            let same_sample = match &sample {
+                Some(ranges) => !ranges.iter().flat_map(|r| r.clone()).any(changed),
+                None => !(0..next.len()).any(changed),
+            };
+            excluded = next;
+            if same_sample || (round > 0 && excluded.iter().filter(|&&x| x).count() == before) {
                 break;
             }
         }
@@ -288,6 +302,9 @@ impl FaultsStep {
         work.state
             .insert("faults".into(), serde_json::json!({"model": fitted.spec.to_string(), "params": fitted.params}));
         work.report.extra.insert("model_choice".into(), serde_json::json!(reason));
+        if self.params.params.is_none() {
+            work.report.extra.insert("fit_rounds".into(), serde_json::json!(rounds_run));
+        }
         if !findings.process_changes.is_empty() {
             work.report.extra.insert("process_changes".into(), serde_json::json!(findings.process_changes));
         }

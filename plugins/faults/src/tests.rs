@@ -115,6 +115,31 @@ fn the_refit_keeps_faults_from_inflating_the_noise_estimate() {
     assert!(h2 < h1, "refit {h2} vs first fit {h1}");
     assert!((h2 - 0.0025).abs() < 0.0012, "{h2}");
     assert!(rows_with(&two_rounds, Fault::Noise).len() >= rows_with(&one_round, Fault::Noise).len());
+    assert_eq!(two_rounds.report.extra["fit_rounds"], 2, "the noisy stretch lies in the fitted blocks");
+}
+
+#[test]
+fn the_rounds_stop_when_the_fitted_readings_keep_their_verdicts() {
+    // A clean tag: nothing excluded, so a second fit would see the same
+    // readings. A spike between the fitted blocks (rows 2056..2264 of 5,760
+    // lie between blocks 2 and 3) is excluded but was never fitted either.
+    let mut w = work("FT-1", simulate(4, 5760), "local-level+arma(1,0)");
+    run(&mut w, serde_json::Value::Null, None);
+    assert_eq!(w.report.extra["fit_rounds"], 1);
+    let mut y = simulate(4, 5760);
+    y[2150] += 3.0;
+    let mut spiked = work("FT-1", y.clone(), "local-level+arma(1,0)");
+    run(&mut spiked, serde_json::Value::Null, None);
+    assert_eq!(rows_with(&spiked, Fault::Spike), vec![2150]);
+    assert_eq!(spiked.report.extra["fit_rounds"], 1);
+    assert_eq!(spiked.report.params, w.report.params, "same fitted readings, same model");
+    // Inside a fitted block the spike forces the refit.
+    y[2150] -= 3.0;
+    y[1700] += 3.0;
+    let mut inside = work("FT-1", y, "local-level+arma(1,0)");
+    run(&mut inside, serde_json::Value::Null, None);
+    assert_eq!(rows_with(&inside, Fault::Spike), vec![1700]);
+    assert_eq!(inside.report.extra["fit_rounds"], 2);
 }
 
 #[test]
