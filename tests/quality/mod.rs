@@ -136,6 +136,11 @@ impl TagRecord {
         self.extra.get("drift")?.get("bias_end")?.as_f64()
     }
 
+    /// `extra.drift.verdict` when it is text.
+    pub fn drift_verdict(&self) -> Option<&str> {
+        self.extra.get("drift")?.get("verdict")?.as_str()
+    }
+
     /// `extra.drift.attributed` when it is a boolean.
     pub fn drift_attributed(&self) -> Option<bool> {
         self.extra.get("drift")?.get("attributed")?.as_bool()

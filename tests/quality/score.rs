@@ -466,7 +466,13 @@ impl Ctx<'_> {
         let inside = rows_in(self.out.rows_of(ev.tag), ev.from_us, ev.to_us);
         let wrongly_corrected = inside.iter().any(|r| r.status == Status::Replaced && r.fault == Some(Fault::Drift));
         let flagged = inside.iter().any(|r| r.status == Status::Ok && r.fault.is_some());
-        let reported = record.and_then(|r| r.drift_attributed()) == Some(false) || flagged;
+        // Reported as such: the drift step says it moved (or diverged) and
+        // cannot attribute it, or the rows are flagged. "Not attributed" on a
+        // member found within tolerance is not a report.
+        let said = record.is_some_and(|r| {
+            r.drift_attributed() == Some(false) && r.drift_verdict().is_some_and(|v| v.contains("cannot attribute"))
+        });
+        let reported = said || flagged;
         DriftScore {
             case: self.case.to_string(),
             tag: ev.tag.to_string(),

@@ -106,7 +106,7 @@ fn tiny() -> DemoData {
 /// The output a perfect cleaner would write for `data`: every scan of the
 /// truth grid that was stored or lies in a gap; faulty readings replaced by
 /// the truth with the right label, gaps filled with the truth, std 0.1;
-/// drift estimates exact, the lone drift reported as not attributed.
+/// drift estimates exact, the lone drift reported as a movement that cannot be attributed.
 fn perfect(data: &DemoData) -> RunOutput {
     let mut out = RunOutput::default();
     for t in &data.tags {
@@ -159,7 +159,9 @@ fn perfect(data: &DemoData) -> RunOutput {
         let attributable = data.truth.groups.iter().any(|g| g.members.contains(&f.tag) && g.members.len() >= 3)
             || data.truth.groups.iter().any(|g| g.members.contains(&f.tag) && g.trusted.is_some_and(|t| t != f.tag));
         let mut extra = serde_json::Map::new();
-        extra.insert("drift".into(), json!({"bias_end": f.bias_end, "attributed": attributable}));
+        // As the drift step words it: a lone transmitter that moved.
+        let verdict = if attributable { "drifting" } else { "moved, no redundant member (cannot attribute)" };
+        extra.insert("drift".into(), json!({"bias_end": f.bias_end, "attributed": attributable, "verdict": verdict}));
         out.records.insert(
             f.tag.to_string(),
             TagRecord { tag: f.tag.to_string(), outcome: "ok".into(), extra, ..TagRecord::default() },
@@ -335,6 +337,13 @@ fn drift_corrections_and_estimates_are_judged() {
     out.records.clear();
     let s = score("no estimate", &out, &data);
     assert_eq!(s.worst_drift_error(), Some(f64::INFINITY));
+    assert!(s.unattributable_drifts().all(|d| !d.reported));
+    // "Not attributed" with a verdict of within tolerance is no report.
+    let quiet = json!({"attributed": false, "verdict": "within tolerance"});
+    let mut extra = serde_json::Map::new();
+    extra.insert("drift".into(), quiet);
+    out.records.insert("AT-9.PV".into(), TagRecord { tag: "AT-9.PV".into(), extra, ..TagRecord::default() });
+    let s = score("within tolerance", &out, &data);
     assert!(s.unattributable_drifts().all(|d| !d.reported));
 }
 

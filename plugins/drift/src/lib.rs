@@ -35,6 +35,7 @@ pub mod align;
 pub mod analysis;
 pub mod fit;
 pub mod jumps;
+pub mod lone;
 pub mod model;
 pub mod params;
 pub mod state;

@@ -74,11 +74,12 @@ impl Step for DriftStep {
             return Ok(());
         }
         let Some(group) = works[0].settings.group.clone() else {
-            return Err(fail(
-                works,
-                "`drift` compares redundant transmitters: put the tags in a group \
-                 (`group: {kind: redundant, trusted: TAG}` on the rule)",
-            ));
+            // No redundant member: report the movement, change nothing.
+            for w in works.iter_mut() {
+                let gp = self.params.resolve(w.settings.range).map_err(|e| fail(std::slice::from_ref(w), e))?;
+                crate::lone::report(w, &gp, time_text);
+            }
+            return Ok(());
         };
         let range = works.iter().find_map(|w| w.settings.range);
         let gp = self.params.resolve(range).map_err(|e| fail(works, format!("group {group}: {e}")))?;

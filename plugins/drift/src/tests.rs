@@ -395,11 +395,51 @@ fn bad_parameters_and_settings_are_refused_with_a_message() {
     }
     let e = step.apply(&mut g.works, &StepContext::new(0)).unwrap_err().to_string();
     assert!(e.contains("TT-1A, TT-1B, TT-1C") && e.contains("no tolerance"), "{e}");
-    // A tag in no group.
+    // A tag in no group, with neither tolerance nor range.
     let mut g = triple_with_drift(1, 100);
-    g.works[0].settings = Arc::new(TagSettings { group: None, ..(*g.works[0].settings).clone() });
+    g.works[0].settings = Arc::new(TagSettings { group: None, range: None, ..(*g.works[0].settings).clone() });
     let e = step.apply(&mut g.works[..1], &StepContext::new(0)).unwrap_err().to_string();
-    assert!(e.contains("TT-1A") && e.contains("group"), "{e}");
+    assert!(e.contains("TT-1A") && e.contains("no tolerance"), "{e}");
+}
+
+#[test]
+fn a_lone_transmitter_reports_its_movement_and_changes_nothing() {
+    // No redundant member: a drift cannot be told from the process, so the
+    // step only says how far the reading moved, beyond the tolerance or not.
+    let mut g = triple_with_drift(3, 720);
+    let mut lone = vec![g.works.remove(0)];
+    lone[0].settings = Arc::new(TagSettings { group: None, ..(*lone[0].settings).clone() });
+    // A level at 10 with white noise (sd 0.05), then a drift of -1.2 units
+    // over the second half of the window.
+    let n = lone[0].table.len();
+    let mut rng = tagwright::rng::Rng::new(17);
+    for i in 0..n {
+        lone[0].table.raw[i] = 10.0 + 0.05 * rng.normal();
+        lone[0].table.value[i] = lone[0].table.raw[i];
+    }
+    let before = lone[0].table.clone();
+    for i in n / 2..n {
+        lone[0].table.raw[i] -= 1.2 * (i - n / 2) as f64 / (n - n / 2) as f64;
+        lone[0].table.value[i] = lone[0].table.raw[i];
+    }
+    let drifted = lone[0].table.clone();
+    run(&mut lone, json!({"tolerance": 0.5}));
+    let e = extra(&lone[0]);
+    assert_eq!(e["verdict"], crate::lone::MOVED, "{e}");
+    assert_eq!(e["attributed"], false);
+    let moved = e["moved"].as_f64().unwrap();
+    // The last eighth is the last quarter of the ramp: its median sits 7/8
+    // of the way down, at -1.05.
+    assert!((moved + 1.05).abs() < 0.03, "{moved}");
+    assert!(lone[0].report.notes.iter().any(|n| n.contains("cannot be told from a process change")));
+    let t = &lone[0].table;
+    assert!(t.status == drifted.status && t.fault == drifted.fault, "rows changed");
+    assert!(t.value.iter().zip(&drifted.value).all(|(a, b)| a.to_bits() == b.to_bits()), "values changed");
+    // Without the drift: within tolerance, no note.
+    let mut steady = vec![TagWork { table: before, report: Default::default(), ..lone[0].clone() }];
+    run(&mut steady, json!({"tolerance": 0.5}));
+    assert_eq!(extra(&steady[0])["verdict"], "within tolerance", "{}", extra(&steady[0]));
+    assert!(steady[0].report.notes.is_empty());
 }
 
 #[test]
