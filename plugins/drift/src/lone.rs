@@ -11,9 +11,11 @@
 //! the window is seen at about 7/8 of its size).
 
 use serde_json::{json, Value};
+use tagwright::engine::time_text;
 use tagwright::plugin::TagWork;
 use tagwright::series::{Fault, Status};
 
+use crate::model::median;
 use crate::params::GroupParams;
 
 /// Share of the window at each end whose readings give the two medians.
@@ -24,19 +26,9 @@ const MIN_EDGE_READINGS: usize = 5;
 /// The verdict when the reading moved beyond the tolerance.
 pub const MOVED: &str = "moved, no redundant member (cannot attribute)";
 
-fn median(v: &mut [f64]) -> f64 {
-    v.sort_by(f64::total_cmp);
-    let n = v.len();
-    if n % 2 == 1 {
-        v[n / 2]
-    } else {
-        0.5 * (v[n / 2 - 1] + v[n / 2])
-    }
-}
-
 /// The movement of one lone transmitter over the window: `extra.drift` and
 /// a note for the technician. Rows are not changed.
-pub fn report(w: &mut TagWork, gp: &GroupParams, time_text: impl Fn(i64) -> String) {
+pub fn report(w: &mut TagWork, gp: &GroupParams) {
     let t = &w.table;
     // Usable: kept readings, and readings an earlier step judged a level
     // fault (a step or drift is what this report is about).
@@ -47,7 +39,21 @@ pub fn report(w: &mut TagWork, gp: &GroupParams, time_text: impl Fn(i64) -> Stri
                 && matches!(t.fault[i], None | Some(Fault::Step) | Some(Fault::Drift))
         })
         .collect();
-    let units = w.settings.units.clone().unwrap_or_default();
+    let (first, last) = match (usable.first(), usable.last()) {
+        (Some(&a), Some(&b)) => (t.ts_us[a], t.ts_us[b]),
+        _ => (0, 0),
+    };
+    let edge = ((last - first) as f64 * EDGE) as i64;
+    let mut head: Vec<f64> = usable.iter().filter(|&&i| t.ts_us[i] <= first + edge).map(|&i| t.raw[i]).collect();
+    let mut tail: Vec<f64> = usable.iter().filter(|&&i| t.ts_us[i] >= last - edge).map(|&i| t.raw[i]).collect();
+    let assessed = edge > 0 && head.len() >= MIN_EDGE_READINGS && tail.len() >= MIN_EDGE_READINGS;
+    let moved = if assessed { Some(median(&mut tail) - median(&mut head)) } else { None };
+    let beyond = moved.is_some_and(|m| m.abs() > gp.tolerance);
+    let verdict = match moved {
+        None => "not assessed (too few usable readings at the ends of the window)",
+        Some(_) if beyond => MOVED,
+        Some(_) => "within tolerance",
+    };
     let mut rec = json!({
         "group": Value::Null,
         "members": [t.tag],
@@ -57,34 +63,21 @@ pub fn report(w: &mut TagWork, gp: &GroupParams, time_text: impl Fn(i64) -> Stri
         "bias_end_std": Value::Null,
         "tolerance": gp.tolerance,
         "corrected": false,
+        "verdict": verdict,
     });
-    let (first, last) = match (usable.first(), usable.last()) {
-        (Some(&a), Some(&b)) => (t.ts_us[a], t.ts_us[b]),
-        _ => (0, 0),
-    };
-    let edge = ((last - first) as f64 * EDGE) as i64;
-    let mut head: Vec<f64> = usable.iter().filter(|&&i| t.ts_us[i] <= first + edge).map(|&i| t.raw[i]).collect();
-    let mut tail: Vec<f64> = usable.iter().filter(|&&i| t.ts_us[i] >= last - edge).map(|&i| t.raw[i]).collect();
-    let obj = rec.as_object_mut();
-    let Some(obj) = obj else { return };
-    if edge <= 0 || head.len() < MIN_EDGE_READINGS || tail.len() < MIN_EDGE_READINGS {
-        obj.insert("verdict".into(), json!("not assessed (too few usable readings at the ends of the window)"));
-        w.report.extra.insert("drift".into(), rec);
-        return;
+    if let (Some(m), Some(obj)) = (moved, rec.as_object_mut()) {
+        obj.insert("moved".into(), json!(m));
+        obj.insert("moved_from".into(), json!(time_text(first)));
+        obj.insert("moved_to".into(), json!(time_text(last)));
     }
-    let moved = median(&mut tail) - median(&mut head);
-    let beyond = moved.abs() > gp.tolerance;
-    obj.insert("verdict".into(), json!(if beyond { MOVED } else { "within tolerance" }));
-    obj.insert("moved".into(), json!(moved));
-    obj.insert("moved_from".into(), json!(time_text(first)));
-    obj.insert("moved_to".into(), json!(time_text(last)));
-    w.report.extra.insert("drift".into(), rec);
-    if beyond {
+    if let (Some(m), true) = (moved, beyond) {
+        let units = w.settings.units.as_deref().unwrap_or("");
         w.report.notes.push(format!(
-            "drift: {} moved {moved:+.3} {units} over the window (median of the last eighth minus the first; \
+            "drift: {} moved {m:+.3} {units} over the window (median of the last eighth minus the first; \
              tolerance {:.3}) and has no redundant member: transmitter drift cannot be told from a process \
              change; check it against an independent measurement before recalibrating",
             t.tag, gp.tolerance
         ));
     }
+    w.report.extra.insert("drift".into(), rec);
 }

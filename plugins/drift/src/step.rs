@@ -4,6 +4,7 @@
 use std::sync::Arc;
 
 use serde_json::{json, Value};
+use tagwright::engine::time_text;
 use tagwright::plugin::{Step, StepContext, StepError, TagWork};
 use tagwright::series::{Fault, Quality, Status};
 
@@ -36,12 +37,6 @@ fn fail(works: &[TagWork], message: impl std::fmt::Display) -> StepError {
 
 fn num(v: f64) -> Value {
     serde_json::Number::from_f64(v).map_or(Value::Null, Value::Number)
-}
-
-fn time_text(us: i64) -> String {
-    chrono::DateTime::<chrono::Utc>::from_timestamp_micros(us)
-        .map(|t| t.to_rfc3339_opts(chrono::SecondsFormat::AutoSi, true))
-        .unwrap_or_else(|| format!("{us}us"))
 }
 
 /// Above this standard deviation (in tolerances) the bias at the end of the
@@ -77,7 +72,7 @@ impl Step for DriftStep {
             // No redundant member: report the movement, change nothing.
             for w in works.iter_mut() {
                 let gp = self.params.resolve(w.settings.range).map_err(|e| fail(std::slice::from_ref(w), e))?;
-                crate::lone::report(w, &gp, time_text);
+                crate::lone::report(w, &gp);
             }
             return Ok(());
         };
