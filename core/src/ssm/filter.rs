@@ -59,6 +59,50 @@ pub(crate) const LN_2PI: f64 = 1.837_877_066_409_345_5;
 /// F_inf below this counts as zero (P_inf is O(1) by construction).
 pub(crate) const DIFFUSE_TOL: f64 = 1e-9;
 
+/// A sum of logarithms taken in batches: the product of up to 16 terms,
+/// then one `ln`, which for a small model costs as much as the rest of an
+/// update. Terms outside 1e-100..1e100 are taken alone, and a product
+/// leaving 1e-150..1e150 is flushed, so the product cannot overflow or
+/// underflow; the result differs from the term-by-term sum by rounding only.
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct LogSum {
+    sum: f64,
+    prod: f64,
+    count: u32,
+}
+
+impl LogSum {
+    pub(crate) fn new() -> Self {
+        LogSum { sum: 0.0, prod: 1.0, count: 0 }
+    }
+
+    #[inline]
+    pub(crate) fn add(&mut self, f: f64) {
+        if !(1e-100..=1e100).contains(&f) {
+            self.sum += f.ln();
+            return;
+        }
+        self.prod *= f;
+        self.count += 1;
+        if self.count == 16 || !(1e-150..=1e150).contains(&self.prod) {
+            self.flush();
+        }
+    }
+
+    fn flush(&mut self) {
+        if self.count > 0 {
+            self.sum += self.prod.ln();
+            self.prod = 1.0;
+            self.count = 0;
+        }
+    }
+
+    pub(crate) fn total(mut self) -> f64 {
+        self.flush();
+        self.sum
+    }
+}
+
 /// Which implementation runs the recursions.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
 pub enum Path {
@@ -373,8 +417,55 @@ where
     let mut st_m = OMatrix::<f64, D, D>::zeros_generic(dim, dim);
     let mut st_pfilt = OMatrix::<f64, D, D>::zeros_generic(dim, dim);
 
+    let mut logs = LogSum::new();
+    // Freezes K, F and the filtered P at the converged predicted P.
+    macro_rules! enter_steady {
+        ($t:expr) => {
+            steady = true;
+            out.steady_from.get_or_insert($t);
+            st_k.gemv(1.0, &ps, &zrows[0], 0.0);
+            st_f = zrows[0].dot(&st_k) + model.h[0];
+            st_logf = st_f.ln();
+            st_gain.copy_from(&st_k);
+            st_gain /= st_f;
+            // Filtered covariance in the steady state: P - K K'/F.
+            st_pfilt.copy_from(&ps);
+            st_pfilt.ger(-1.0 / st_f, &st_k, &st_k, 1.0);
+        };
+    }
+    // (The general path keeps the matrix code, as the reference the tests
+    // compare with.)
+    let two_states = m == 2 && p == 1 && path == Path::Fixed;
     let mut t = 0;
     while t < n {
+        if two_states && !diffuse && !steady {
+            let (tn, converged) = run_two_states(
+                model,
+                obs,
+                opts,
+                TwoStateRefs {
+                    a: a.as_mut_slice(),
+                    p: ps.as_mut_slice(),
+                    z: zrows[0].as_slice(),
+                    c: c.as_slice(),
+                    sys: &mut sys,
+                    cur_dt: &mut cur_dt,
+                    logs: &mut logs,
+                    out: &mut *out,
+                },
+                t,
+            );
+            t = tn;
+            tt.copy_from_slice(sys.t.as_slice());
+            ttr.copy_from(&tt.transpose());
+            rqr.copy_from_slice(sys.rqr.as_slice());
+            if converged {
+                enter_steady!(t);
+            }
+            if t == n {
+                break;
+            }
+        }
         if steady {
             // Steady state (p = 1): K, F and P are fixed; only the state
             // moves, while the steps are plain (observed, unit weight, one period).
@@ -518,7 +609,11 @@ where
                 ps.ger(-1.0 / f, &ks, &ks, 1.0);
             }
             out.sum_v2_f += v * v / f;
-            out.sum_log_f += if steady { st_logf } else { f.ln() };
+            if steady {
+                out.sum_log_f += st_logf;
+            } else {
+                logs.add(f);
+            }
             out.nobs += 1;
             if store {
                 out.v[j] = v;
@@ -574,23 +669,156 @@ where
             let scale = ps.amax().max(f64::MIN_POSITIVE);
             p_prev -= &ps;
             if p_prev.amax() <= opts.steady_tol * scale {
-                steady = true;
-                out.steady_from.get_or_insert(t);
-                st_k.gemv(1.0, &ps, &zrows[0], 0.0);
-                st_f = zrows[0].dot(&st_k) + model.h[0];
-                st_logf = st_f.ln();
-                st_gain.copy_from(&st_k);
-                st_gain /= st_f;
-                // Filtered covariance in the steady state: P - K K'/F.
-                st_pfilt.copy_from(&ps);
-                st_pfilt.ger(-1.0 / st_f, &st_k, &st_k, 1.0);
+                enter_steady!(t);
             }
         }
     }
     if diffuse {
         out.diffuse_end = n;
     }
+    out.sum_log_f += logs.total();
     out.finish_loglik();
+}
+
+/// The mutable state [`run_two_states`] works on.
+struct TwoStateRefs<'a> {
+    /// State (2).
+    a: &'a mut [f64],
+    /// Predicted covariance (2 x 2, column-major).
+    p: &'a mut [f64],
+    z: &'a [f64],
+    c: &'a [f64],
+    sys: &'a mut super::model::StepSystem,
+    cur_dt: &'a mut f64,
+    logs: &'a mut LogSum,
+    out: &'a mut FilterOutput,
+}
+
+/// The ordinary (non-diffuse, not yet steady) recursion of a two-state,
+/// one-element model on plain numbers: the same updates as the general
+/// loop, with the symmetric P held as three numbers, which roughly halves
+/// its cost (the recursion is a chain of dependent operations, and the
+/// general loop adds copies and checks to it). Runs from `t` until the end
+/// or until the predicted covariance has converged (the general loop's
+/// test); returns the next time index and whether it converged.
+fn run_two_states(
+    model: &StateSpace,
+    obs: &Observations,
+    opts: &FilterOptions,
+    s: TwoStateRefs,
+    t0: usize,
+) -> (usize, bool) {
+    let TwoStateRefs { a, p, z, c, sys, cur_dt, logs, out } = s;
+    let n = obs.len();
+    let store = opts.store;
+    let allow_steady = opts.steady_tol > 0.0;
+    let (z0, z1, d0, h0) = (z[0], z[1], model.d[0], model.h[0]);
+    let (c0, c1) = (c[0], c[1]);
+    let (mut a0, mut a1) = (a[0], a[1]);
+    let (mut p00, mut p01, mut p11) = (p[0], 0.5 * (p[1] + p[2]), p[3]);
+    let load = |sys: &super::model::StepSystem| {
+        let (t, q) = (sys.t.as_slice(), sys.rqr.as_slice());
+        (t[0], t[1], t[2], t[3], q[0], 0.5 * (q[1] + q[2]), q[3])
+    };
+    let (mut t00, mut t10, mut t01, mut t11, mut q00, mut q01, mut q11) = load(sys);
+    let (mut sum_v2_f, mut nobs) = (0.0, 0usize);
+    let mut t = t0;
+    let mut converged = false;
+    while t < n {
+        if store {
+            out.a_pred[2 * t] = a0;
+            out.a_pred[2 * t + 1] = a1;
+            out.p_pred[4 * t..4 * t + 4].copy_from_slice(&[p00, p01, p01, p11]);
+        }
+        let (q_prev00, q_prev01, q_prev11) = (p00, p01, p11);
+        let y = obs.y[t];
+        let mut plain = true;
+        if y.is_nan() {
+            plain = false;
+            if store {
+                out.v[t] = f64::NAN;
+                out.f[t] = f64::NAN;
+                out.k[2 * t] = 0.0;
+                out.k[2 * t + 1] = 0.0;
+                out.kind[t] = ElemKind::Missing;
+            }
+        } else {
+            let w = obs.weight(t, 0);
+            if w != 1.0 {
+                plain = false;
+            }
+            let h = h0 * w;
+            let v = y - (z0 * a0 + z1 * a1) - d0;
+            let k0 = p00 * z0 + p01 * z1;
+            let k1 = p01 * z0 + p11 * z1;
+            let f = z0 * k0 + z1 * k1 + h;
+            if f.is_nan() || f <= 1e-13 * (h + 0f64.max(p00).max(p11)).max(f64::MIN_POSITIVE) {
+                if store {
+                    out.v[t] = v;
+                    out.f[t] = f;
+                    out.k[2 * t] = 0.0;
+                    out.k[2 * t + 1] = 0.0;
+                    out.kind[t] = ElemKind::Degenerate;
+                }
+            } else {
+                let finv = 1.0 / f;
+                a0 += k0 * v * finv;
+                a1 += k1 * v * finv;
+                p00 -= k0 * k0 * finv;
+                p01 -= k0 * k1 * finv;
+                p11 -= k1 * k1 * finv;
+                sum_v2_f += v * v * finv;
+                logs.add(f);
+                nobs += 1;
+                if store {
+                    out.v[t] = v;
+                    out.f[t] = f;
+                    out.k[2 * t] = k0;
+                    out.k[2 * t + 1] = k1;
+                    out.kind[t] = ElemKind::Regular;
+                }
+            }
+        }
+        if store {
+            out.a_filt[2 * t] = a0;
+            out.a_filt[2 * t + 1] = a1;
+            out.p_filt[4 * t..4 * t + 4].copy_from_slice(&[p00, p01, p01, p11]);
+        }
+        // Prediction.
+        let dt = obs.step(t);
+        if dt != *cur_dt {
+            model.system_for_step(dt, sys);
+            (t00, t10, t01, t11, q00, q01, q11) = load(sys);
+            *cur_dt = dt;
+            plain = false;
+        }
+        (a0, a1) = (t00 * a0 + t01 * a1 + c0, t10 * a0 + t11 * a1 + c1);
+        // T P T' + RQR' on the symmetric P.
+        let m00 = t00 * p00 + t01 * p01;
+        let m01 = t00 * p01 + t01 * p11;
+        let m10 = t10 * p00 + t11 * p01;
+        let m11 = t10 * p01 + t11 * p11;
+        // Negative diagonal round-off is cleared (NaN is left alone, as in `tidy`).
+        let clear = |x: f64| if x < 0.0 { 0.0 } else { x };
+        p00 = clear(m00 * t00 + m01 * t01 + q00);
+        p01 = m00 * t10 + m01 * t11 + q01;
+        p11 = clear(m10 * t10 + m11 * t11 + q11);
+        t += 1;
+        if allow_steady && plain && dt == 1.0 {
+            let scale = p00.abs().max(p01.abs()).max(p11.abs()).max(f64::MIN_POSITIVE);
+            let change = (q_prev00 - p00).abs().max((q_prev01 - p01).abs()).max((q_prev11 - p11).abs());
+            if change <= opts.steady_tol * scale {
+                converged = true;
+                break;
+            }
+        }
+    }
+    a[0] = a0;
+    a[1] = a1;
+    p.copy_from_slice(&[p00, p01, p01, p11]);
+    out.sum_v2_f += sum_v2_f;
+    out.nobs += nobs;
+    (t, converged)
 }
 
 /// Copies a stored m x m block into a dynamic matrix (for callers outside the hot loop).

@@ -175,6 +175,21 @@ impl StateSpace {
             sys.dt = dt;
             return;
         }
+        if sys.last_dt == dt {
+            // The same gap as last time (a subsample's blocks, a tag's
+            // regular outages): copy instead of powering again.
+            sys.t.copy_from(&sys.last_t);
+            sys.rqr.copy_from(&sys.last_rqr);
+            sys.dt = dt;
+            return;
+        }
+        self.compute_system_for_step(dt, sys);
+        sys.last_t.copy_from(&sys.t);
+        sys.last_rqr.copy_from(&sys.rqr);
+        sys.last_dt = dt;
+    }
+
+    fn compute_system_for_step(&self, dt: f64, sys: &mut StepSystem) {
         if !self.all_closed_form() {
             // Whole periods: (T^k, sum_{j<k} T^j RQR' T^j') by binary powering.
             // Two steps compose as (T_b T_a, T_b S_a T_b' + S_b); powers of one
@@ -257,7 +272,9 @@ impl StateSpace {
     }
 }
 
-/// Preallocated T and RQR' for one step length, with scratch space.
+/// Preallocated T and RQR' for one step length, with scratch space. It
+/// belongs to the model whose [`StateSpace::step_system`] made it (it keeps
+/// that model's last multi-period step).
 #[derive(Debug, Clone)]
 pub struct StepSystem {
     /// T for the current step.
@@ -272,6 +289,10 @@ pub struct StepSystem {
     tmp2: DMatrix<f64>,
     base_t: DMatrix<f64>,
     base_s: DMatrix<f64>,
+    /// The last step length other than one period, with its T and RQR'.
+    last_dt: f64,
+    last_t: DMatrix<f64>,
+    last_rqr: DMatrix<f64>,
 }
 
 impl StepSystem {
@@ -286,6 +307,9 @@ impl StepSystem {
             tmp2: DMatrix::zeros(m, m),
             base_t: DMatrix::zeros(m, m),
             base_s: DMatrix::zeros(m, m),
+            last_dt: f64::NAN,
+            last_t: DMatrix::zeros(m, m),
+            last_rqr: DMatrix::zeros(m, m),
         }
     }
 

@@ -24,6 +24,7 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
     let mut steady = false;
     let (mut st_k, mut st_f, mut st_pf, mut st_logf) = (0.0, 0.0, 0.0, 0.0);
     let (mut sum_v2_f, mut sum_log_f, mut nobs) = (0.0, 0.0, 0usize);
+    let mut logs = super::filter::LogSum::new();
 
     let mut t = 0;
     while t < n {
@@ -117,7 +118,7 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
                     ps = (ps - k * k / f).max(0.0);
                 }
                 sum_v2_f += v * v / f;
-                sum_log_f += f.ln();
+                logs.add(f);
                 nobs += 1;
                 if store {
                     out.v[t] = v;
@@ -175,7 +176,7 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
         out.diffuse_end = n;
     }
     out.sum_v2_f = sum_v2_f;
-    out.sum_log_f = sum_log_f;
+    out.sum_log_f = sum_log_f + logs.total();
     out.nobs = nobs;
     out.finish_loglik();
 }
@@ -184,8 +185,8 @@ pub(crate) fn smooth(model: &StateSpace, obs: &Observations, filt: &FilterOutput
     let n = filt.n;
     let z = model.z[(0, 0)];
     out.reset(n, 1);
-    let keep_aux = out.keep_aux;
-    let (state, cov, aux_r, aux_n) = (&mut out.state, &mut out.cov, &mut out.r, &mut out.n_cum);
+    let (keep_aux, keep_del) = (out.keep_aux, out.keep_del);
+    let (state, cov, aux_r, aux_n, del) = (&mut out.state, &mut out.cov, &mut out.r, &mut out.n_cum, &mut out.del);
     let mut sys = model.step_system();
     let (mut tr, mut cur_dt) = (sys.t[(0, 0)], 1.0);
     let (mut r0, mut n0, mut r1, mut n1, mut n2) = (0.0, 0.0, 0.0, 0.0, 0.0);
@@ -195,6 +196,9 @@ pub(crate) fn smooth(model: &StateSpace, obs: &Observations, filt: &FilterOutput
         match filt.kind[t] {
             ElemKind::Regular => {
                 let (v, f, k) = (filt.v[t], filt.f[t], filt.k[t]);
+                if keep_del && !in_diffuse {
+                    del[t] = super::smoother::deletion_residual(v, f, k * r0, k * n0 * k);
+                }
                 let l = 1.0 - k * z / f;
                 r0 = z * v / f + l * r0;
                 n0 = z * z / f + l * l * n0;

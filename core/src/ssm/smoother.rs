@@ -55,6 +55,17 @@ pub struct SmootherOutput {
     pub r: Vec<f64>,
     /// N_{t-1} at index t (n x m x m, column-major blocks), with `keep_aux`.
     pub n_cum: Vec<f64>,
+    /// Set before smoothing to also keep `del` (one observation element per
+    /// time only).
+    pub keep_del: bool,
+    /// Standardised deletion residual of the observation at t (n), with
+    /// `keep_del`: u_t / sqrt(D_t) with u_t = (v_t - k_t' r_t) / F_t and
+    /// D_t = 1/F_t + k_t' N_t k_t / F_t^2 (DK 2012 §4.5.3 in univariate form;
+    /// de Jong & Penzer 1998), where r_t, N_t are the cumulants before the
+    /// element at t is taken in (K not divided by F, as the filter stores
+    /// it). Computed for regular elements after the diffuse phase; NaN
+    /// elsewhere.
+    pub del: Vec<f64>,
 }
 
 impl SmootherOutput {
@@ -67,6 +78,10 @@ impl SmootherOutput {
         let aux = if self.keep_aux { n * m } else { 0 };
         self.r.resize(aux, 0.0);
         self.n_cum.resize(aux * m, 0.0);
+        self.del.clear();
+        if self.keep_del {
+            self.del.resize(n, f64::NAN);
+        }
     }
 
     /// Standardised smoothed disturbance of state `j` between t and t+1
@@ -129,12 +144,25 @@ pub fn smooth_into(model: &StateSpace, obs: &Observations, filt: &FilterOutput, 
     }
 }
 
+/// u / sqrt(D) of [`SmootherOutput::del`] from the innovation v, its
+/// variance f, k' r and k' N k; NaN where D is not positive.
+#[inline]
+pub(crate) fn deletion_residual(v: f64, f: f64, kr: f64, knk: f64) -> f64 {
+    let d = 1.0 / f + knk / (f * f);
+    if d > 0.0 {
+        (v - kr) / f / d.sqrt()
+    } else {
+        f64::NAN
+    }
+}
+
 fn run<D: Dim>(dim: D, model: &StateSpace, obs: &Observations, filt: &FilterOutput, out: &mut SmootherOutput)
 where
     DefaultAllocator: Allocator<D, D> + Allocator<D> + Allocator<U1, D>,
 {
     let (n, p, m) = (filt.n, filt.p, filt.m);
     out.reset(n, m);
+    let keep_del = out.keep_del && p == 1;
     let zrows: Vec<OVector<f64, D>> = (0..p).map(|i| ovec(dim, model.z.row(i).iter().cloned())).collect();
     let mut sys = model.step_system();
     let mut tt = omat(dim, &sys.t);
@@ -149,7 +177,19 @@ where
     let (mut pm, mut v, mut tmp) = (zero_m(), zero_m(), zero_m());
     let mut diffuse_iter = filt.diffuse.iter().rev();
 
-    for t in (0..n).rev() {
+    // After the diffuse phase a two-state, one-element model runs on plain
+    // numbers (the general path keeps the matrix code as the tests' reference).
+    let mut t_end = n;
+    if m == 2 && p == 1 && filt.path == Path::Fixed && filt.diffuse_end < n {
+        let (r, nn) = run_two_states(model, obs, filt, out, keep_del, &mut sys, &mut cur_dt);
+        r0.copy_from_slice(&r);
+        n0.copy_from_slice(&[nn[0], nn[1], nn[1], nn[2]]);
+        tt.copy_from_slice(sys.t.as_slice());
+        ttr.copy_from(&tt.transpose());
+        t_end = filt.diffuse_end;
+    }
+
+    for t in (0..t_end).rev() {
         let in_diffuse = t < filt.diffuse_end;
         for i in (0..p).rev() {
             let j = t * p + i;
@@ -162,6 +202,9 @@ where
                     u.gemv(1.0, &n0, &k, 0.0);
                     let s = k.dot(&u);
                     let kr = k.dot(&r0);
+                    if keep_del && !in_diffuse {
+                        out.del[t] = deletion_residual(vj, f, kr, s);
+                    }
                     r0.axpy((vj - kr) / f, z, 1.0);
                     n0.ger(-1.0 / f, z, &u, 1.0);
                     n0.ger(-1.0 / f, &u, z, 1.0);
@@ -249,4 +292,92 @@ where
             }
         }
     }
+}
+
+/// The backward recursion of [`run`] for a two-state, one-element model
+/// from the last time down to the end of the diffuse phase, with r and the
+/// symmetric N held as plain numbers. Returns r and N (n00, n01, n11) after
+/// the step back from the first time it handled.
+fn run_two_states(
+    model: &StateSpace,
+    obs: &Observations,
+    filt: &FilterOutput,
+    out: &mut SmootherOutput,
+    keep_del: bool,
+    sys: &mut super::model::StepSystem,
+    cur_dt: &mut f64,
+) -> ([f64; 2], [f64; 3]) {
+    let n = filt.n;
+    let (z0, z1) = (model.z[(0, 0)], model.z[(0, 1)]);
+    let load = |sys: &super::model::StepSystem| {
+        let t = sys.t.as_slice();
+        (t[0], t[1], t[2], t[3])
+    };
+    let (mut t00, mut t10, mut t01, mut t11) = load(sys);
+    let (mut r0, mut r1) = (0.0, 0.0);
+    let (mut n00, mut n01, mut n11) = (0.0, 0.0, 0.0);
+    let keep_aux = out.keep_aux;
+    for t in (filt.diffuse_end..n).rev() {
+        if filt.kind[t] == ElemKind::Regular {
+            let (v, f) = (filt.v[t], filt.f[t]);
+            let (k0, k1) = (filt.k[2 * t], filt.k[2 * t + 1]);
+            let u0 = n00 * k0 + n01 * k1;
+            let u1 = n01 * k0 + n11 * k1;
+            let s = k0 * u0 + k1 * u1;
+            let kr = k0 * r0 + k1 * r1;
+            if keep_del {
+                out.del[t] = deletion_residual(v, f, kr, s);
+            }
+            // 1/F does not depend on r or N, so no division sits on the
+            // chain from one time's r and N to the next.
+            let finv = 1.0 / f;
+            let g = (v - kr) * finv;
+            r0 += z0 * g;
+            r1 += z1 * g;
+            let c = (s * finv + 1.0) * finv;
+            n00 += -2.0 * z0 * u0 * finv + z0 * z0 * c;
+            n01 += -(z0 * u1 + u0 * z1) * finv + z0 * z1 * c;
+            n11 += -2.0 * z1 * u1 * finv + z1 * z1 * c;
+        }
+        // Smoothed state and covariance: a + P r, P - P N P.
+        let pm = &filt.p_pred[4 * t..4 * t + 4];
+        let (p00, p10, p01, p11) = (pm[0], pm[1], pm[2], pm[3]);
+        let (a0, a1) = (filt.a_pred[2 * t], filt.a_pred[2 * t + 1]);
+        out.state[2 * t] = a0 + p00 * r0 + p01 * r1;
+        out.state[2 * t + 1] = a1 + p10 * r0 + p11 * r1;
+        let m00 = n00 * p00 + n01 * p10;
+        let m01 = n00 * p01 + n01 * p11;
+        let m10 = n01 * p00 + n11 * p10;
+        let m11 = n01 * p01 + n11 * p11;
+        let v00 = p00 - (p00 * m00 + p01 * m10);
+        let v01 = p01 - (p00 * m01 + p01 * m11);
+        let v10 = p10 - (p10 * m00 + p11 * m10);
+        let v11 = p11 - (p10 * m01 + p11 * m11);
+        let off = 0.5 * (v01 + v10);
+        let clear = |x: f64| if x < 0.0 { 0.0 } else { x };
+        out.cov[4 * t..4 * t + 4].copy_from_slice(&[clear(v00), off, off, clear(v11)]);
+        if keep_aux {
+            out.r[2 * t] = r0;
+            out.r[2 * t + 1] = r1;
+            out.n_cum[4 * t..4 * t + 4].copy_from_slice(&[n00, n01, n01, n11]);
+        }
+        // Step back through T_{t-1}: r <- T'r, N <- T'NT.
+        if t > 0 {
+            let dt = obs.step(t - 1);
+            if dt != *cur_dt {
+                model.system_for_step(dt, sys);
+                (t00, t10, t01, t11) = load(sys);
+                *cur_dt = dt;
+            }
+            (r0, r1) = (t00 * r0 + t10 * r1, t01 * r0 + t11 * r1);
+            let m00 = n00 * t00 + n01 * t10;
+            let m01 = n00 * t01 + n01 * t11;
+            let m10 = n01 * t00 + n11 * t10;
+            let m11 = n01 * t01 + n11 * t11;
+            n00 = t00 * m00 + t10 * m10;
+            n01 = t00 * m01 + t10 * m11;
+            n11 = t01 * m01 + t11 * m11;
+        }
+    }
+    ([r0, r1], [n00, n01, n11])
 }

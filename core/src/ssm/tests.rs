@@ -324,3 +324,67 @@ fn whole_period_steps_match_repeated_single_steps() {
     assert!(sys.rqr.iter().all(|v| v.is_finite()));
     assert!((sys.rqr[(0, 0)] - 0.2 * 86_400.0).abs() < 1e-6);
 }
+
+#[test]
+fn two_state_loop_matches_the_matrix_code() {
+    // A level with an AR(1): two states, one element, the level diffuse.
+    // Missing readings, uncertain ones (H weight), gaps of 3 and 7 periods
+    // (each length twice, so the cached gap system is used), and a stretch
+    // long enough for the steady state.
+    let spec: ModelSpec = "local-level+arma(1,0)".parse().unwrap();
+    let model = spec.build(&[0.04, 0.001, 0.95, 0.02]).unwrap();
+    let mut rng = Rng::new(5);
+    let n = 3000;
+    let y_full = simulate(&model, n, &mut rng);
+    let mut y = y_full.clone();
+    for t in [10, 11, 12, 400, 1777] {
+        y[t] = f64::NAN;
+    }
+    let mut w = vec![1.0; n];
+    for t in [20, 21, 900, 2500] {
+        w[t] = 4.0;
+    }
+    let mut dt = vec![1.0; n];
+    for (t, d) in [(50, 3.0), (60, 7.0), (1200, 3.0), (2900, 7.0)] {
+        dt[t] = d;
+    }
+    for gaps in [false, true] {
+        let obs = Observations { y: &y, p: 1, dt: gaps.then_some(&dt[..]), h_scale: Some(&w) };
+        for steady_tol in [0.0, 1e-11] {
+            let run = |path| filter(&model, &obs, &FilterOptions { store: true, steady_tol, path }).unwrap();
+            let (fast, general) = (run(Path::Fixed), run(Path::General));
+            assert_eq!(fast.path, Path::Fixed);
+            assert!(close(fast.loglik, general.loglik, 1e-12), "loglik {} vs {}", fast.loglik, general.loglik);
+            assert_eq!(fast.nobs, general.nobs);
+            assert_eq!(fast.diffuse_end, general.diffuse_end);
+            assert_eq!(fast.steady_from, general.steady_from, "gaps {gaps}, tol {steady_tol}");
+            if steady_tol > 0.0 {
+                assert!(fast.steady_from.is_some(), "the steady state should be reached");
+            }
+            assert_eq!(fast.kind, general.kind);
+            // Missing readings have NaN innovations on both paths.
+            let finite = |x: &[f64]| x.iter().map(|v| if v.is_nan() { 0.0 } else { *v }).collect::<Vec<_>>();
+            assert_eq!(
+                fast.v.iter().map(|v| v.is_nan()).collect::<Vec<_>>(),
+                general.v.iter().map(|v| v.is_nan()).collect::<Vec<_>>()
+            );
+            assert_all_close("v", &finite(&fast.v), &finite(&general.v), 1e-9);
+            assert_all_close("f", &finite(&fast.f), &finite(&general.f), 1e-9);
+            assert_all_close("k", &fast.k, &general.k, 1e-9);
+            assert_all_close("a_filt", &fast.a_filt, &general.a_filt, 1e-9);
+            assert_all_close("p_filt", &fast.p_filt, &general.p_filt, 1e-9);
+            let smooth_all = |f: &FilterOutput| {
+                let mut s = SmootherOutput { keep_aux: true, keep_del: true, ..Default::default() };
+                smooth_into(&model, &obs, f, &mut s);
+                s
+            };
+            let (sf, sg) = (smooth_all(&fast), smooth_all(&general));
+            assert_all_close("smoothed state", &sf.state, &sg.state, 1e-9);
+            assert_all_close("smoothed cov", &sf.cov, &sg.cov, 1e-8);
+            assert_all_close("r", &sf.r, &sg.r, 1e-8);
+            assert_all_close("N", &sf.n_cum, &sg.n_cum, 1e-8);
+            assert_eq!(sf.del.iter().filter(|d| d.is_finite()).count(), fast.nobs);
+            assert_all_close("deletion residuals", &finite(&sf.del), &finite(&sg.del), 1e-8);
+        }
+    }
+}
