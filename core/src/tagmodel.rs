@@ -379,11 +379,12 @@ impl Fitted {
     /// Smoothed process value (the signal Z a_t + d, without observation
     /// noise) and its standard deviation at every grid point.
     pub fn smooth(&self, obs: &TagObs, keep_aux: bool) -> Result<Smoothed, ModelError> {
-        self.smooth_inner(obs, keep_aux, None)
+        self.smooth_inner(obs, &obs.y, keep_aux, None)
     }
 
-    /// [`Fitted::smooth`] plus, at every grid point where `y_all` has a
-    /// reading, the standardised deletion residual: the reading against the
+    /// The smoother with its auxiliary cumulants (as [`Fitted::smooth`] with
+    /// `keep_aux`, but `mean` and `sd` left empty) and, at every grid point
+    /// where `y_all` has a reading, the standardised deletion residual: the reading against the
     /// smoothed estimate from all *other* observations, divided by its
     /// standard deviation. For an observed point it is u_t / sqrt(D_t) with
     /// u_t = (v_t - k_t' r_t) / F_t and D_t = 1/F_t + k_t' N_t k_t / F_t^2
@@ -393,107 +394,124 @@ impl Fitted {
     /// (y - signal) / sqrt(Var(signal) + h w). Defined with or without
     /// observation noise; NaN inside the diffuse start.
     pub fn smooth_with_outliers(&self, obs: &TagObs, y_all: &[f64]) -> Result<Smoothed, ModelError> {
-        self.smooth_inner(obs, true, Some(y_all))
+        self.smooth_inner(obs, &obs.y, true, Some(y_all))
     }
 
-    fn smooth_inner(&self, obs: &TagObs, keep_aux: bool, y_all: Option<&[f64]>) -> Result<Smoothed, ModelError> {
-        let o = obs.observations();
-        let filt = ssm::filter(&self.model, &o, &FilterOptions::default()).map_err(|e| ModelError(e.to_string()))?;
-        let mut sm = SmootherOutput { keep_aux, ..Default::default() };
-        ssm::smooth_into(&self.model, &o, &filt, &mut sm);
-        let n = obs.len();
-        let mut mean = Vec::with_capacity(n);
-        let mut sd = Vec::with_capacity(n);
-        for t in 0..n {
-            mean.push(sm.signal(&self.model, t, 0));
-            sd.push(sm.signal_var(&self.model, t, 0).sqrt());
+    /// [`Fitted::smooth_with_outliers`] on the observations `y` (one per grid
+    /// point of `obs`, NaN = left out) instead of `obs.y`: the callers that
+    /// try several sets of left-out readings need not copy the whole `obs`.
+    pub fn smooth_with_outliers_of(&self, obs: &TagObs, y: &[f64], y_all: &[f64]) -> Result<Smoothed, ModelError> {
+        if y.len() != obs.len() {
+            return Err(ModelError(format!("{} observations for {} grid points", y.len(), obs.len())));
         }
-        let outlier = match y_all {
-            Some(y_all) => self.deletion_residuals(obs, &filt, &sm, &mean, &sd, y_all),
-            None => Vec::new(),
-        };
-        Ok(Smoothed { mean, sd, smoother: sm, diffuse_end: filt.diffuse_end, outlier })
+        self.smooth_inner(obs, y, true, Some(y_all))
     }
 
+    fn smooth_inner(
+        &self,
+        obs: &TagObs,
+        y: &[f64],
+        keep_aux: bool,
+        y_all: Option<&[f64]>,
+    ) -> Result<Smoothed, ModelError> {
+        thread_local! {
+            // The filter's stored arrays, reused from tag to tag on a thread
+            // (tens of MB for a long window: fresh pages cost more than the
+            // recursion that fills them).
+            static FILTER_WORK: std::cell::RefCell<ssm::FilterOutput> = Default::default();
+        }
+        let o = Observations { y, ..obs.observations() };
+        FILTER_WORK.with(|work| {
+            let filt = &mut *work.borrow_mut();
+            ssm::filter_into(&self.model, &o, &FilterOptions::default(), filt)
+                .map_err(|e| ModelError(e.to_string()))?;
+            let keep_del = y_all.is_some() && o.p == 1;
+            let mut sm = SmootherOutput { keep_aux, keep_del, ..Default::default() };
+            ssm::smooth_into(&self.model, &o, filt, &mut sm);
+            let n = obs.len();
+            let (mut mean, mut sd) = (Vec::new(), Vec::new());
+            let outlier = match y_all {
+                Some(y_all) => self.deletion_residuals(obs, filt, &sm, y_all),
+                None => {
+                    mean.reserve_exact(n);
+                    sd.reserve_exact(n);
+                    let (z, d) = self.signal_row();
+                    let m = z.len();
+                    for t in 0..n {
+                        mean.push(signal(&z, d, &sm.state[t * m..(t + 1) * m]));
+                        sd.push(signal_var(&z, &sm.cov[t * m * m..(t + 1) * m * m]).sqrt());
+                    }
+                    Vec::new()
+                }
+            };
+            Ok(Smoothed { mean, sd, smoother: sm, diffuse_end: filt.diffuse_end, outlier })
+        })
+    }
+
+    /// The first row of Z and d: the signal is z a + d.
+    fn signal_row(&self) -> (Vec<f64>, f64) {
+        (self.model.z.row(0).iter().copied().collect(), self.model.d[0])
+    }
+
+    /// Standardised deletion residuals (see [`Fitted::smooth_with_outliers`]):
+    /// the smoother's own for a regular element, else the reading against
+    /// the smoothed signal and its variance plus the observation noise.
     fn deletion_residuals(
         &self,
         obs: &TagObs,
         filt: &ssm::FilterOutput,
         sm: &SmootherOutput,
-        mean: &[f64],
-        sd: &[f64],
         y_all: &[f64],
     ) -> Vec<f64> {
         let n = obs.len();
-        let m = self.model.state_dim();
         let h = self.model.h[0];
+        let (z, d) = self.signal_row();
+        let m = z.len();
         let mut out = vec![f64::NAN; n];
-        let mut sys = self.model.step_system();
-        let mut cur_dt = 1.0;
-        let mut rb = vec![0.0; m];
-        let mut nb = vec![0.0; m * m];
-        let mut tmp = vec![0.0; m * m];
-        for t in filt.diffuse_end..n {
+        for (t, out_t) in out.iter_mut().enumerate().skip(filt.diffuse_end) {
             let Some(&y) = y_all.get(t) else { break };
             if !y.is_finite() {
                 continue;
             }
-            if filt.kind.get(t) != Some(&ssm::filter::ElemKind::Regular) {
-                let var = sd[t] * sd[t] + h * obs.w[t];
-                if var > 0.0 {
-                    out[t] = (y - mean[t]) / var.sqrt();
-                }
+            if filt.kind.get(t) == Some(&ssm::filter::ElemKind::Regular) && sm.keep_del {
+                *out_t = sm.del[t];
                 continue;
             }
-            // r_t = T' r[t+1], N_t = T' N[t+1] T (zero at the end).
-            rb.iter_mut().for_each(|x| *x = 0.0);
-            nb.iter_mut().for_each(|x| *x = 0.0);
-            if t + 1 < n {
-                let dt = obs.dt[t];
-                if dt != cur_dt {
-                    self.model.system_for_step(dt, &mut sys);
-                    cur_dt = dt;
-                }
-                let tt = &sys.t;
-                let r1 = &sm.r[(t + 1) * m..(t + 2) * m];
-                let n1 = &sm.n_cum[(t + 1) * m * m..(t + 2) * m * m];
-                for i in 0..m {
-                    rb[i] = (0..m).map(|j| tt[(j, i)] * r1[j]).sum();
-                }
-                // tmp = N1 T (column-major N1).
-                for c in 0..m {
-                    for r in 0..m {
-                        tmp[c * m + r] = (0..m).map(|j| n1[j * m + r] * tt[(j, c)]).sum();
-                    }
-                }
-                for c in 0..m {
-                    for r in 0..m {
-                        nb[c * m + r] = (0..m).map(|j| tt[(j, r)] * tmp[c * m + j]).sum();
-                    }
-                }
-            }
-            let (v, f) = (filt.v[t], filt.f[t]);
-            let k = &filt.k[t * m..(t + 1) * m];
-            let kr: f64 = (0..m).map(|i| k[i] * rb[i]).sum();
-            let mut knk = 0.0;
-            for c in 0..m {
-                for r in 0..m {
-                    knk += k[r] * nb[c * m + r] * k[c];
-                }
-            }
-            let u = (v - kr) / f;
-            let d = 1.0 / f + knk / (f * f);
-            if d > 0.0 {
-                out[t] = u / d.sqrt();
+            let mean = signal(&z, d, &sm.state[t * m..(t + 1) * m]);
+            let var = signal_var(&z, &sm.cov[t * m * m..(t + 1) * m * m]) + h * obs.w[t];
+            if var > 0.0 {
+                *out_t = (y - mean) / var.sqrt();
             }
         }
         out
     }
 }
 
+/// z a + d.
+#[inline]
+fn signal(z: &[f64], d: f64, a: &[f64]) -> f64 {
+    d + z.iter().zip(a).map(|(z, a)| z * a).sum::<f64>()
+}
+
+/// z V z' for a column-major m x m block V, not below zero.
+#[inline]
+fn signal_var(z: &[f64], v: &[f64]) -> f64 {
+    let m = z.len();
+    let mut s = 0.0;
+    for (c, zc) in z.iter().enumerate() {
+        if *zc == 0.0 {
+            continue;
+        }
+        s += zc * z.iter().zip(&v[c * m..(c + 1) * m]).map(|(zr, v)| zr * v).sum::<f64>();
+    }
+    s.max(0.0)
+}
+
 /// Result of [`Fitted::smooth`].
 #[derive(Debug, Clone)]
 pub struct Smoothed {
+    /// Smoothed signal and its standard deviation per grid point (empty
+    /// from [`Fitted::smooth_with_outliers`]).
     pub mean: Vec<f64>,
     pub sd: Vec<f64>,
     /// The smoother's output (states, covariances, and with `keep_aux` the

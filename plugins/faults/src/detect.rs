@@ -212,39 +212,36 @@ pub fn find(
     // that a spike does not mask its neighbours: first with the gated
     // readings left out, then with every reading found in the first pass
     // left out.
-    let mut cleaned = clean.clone();
-    for k in 0..n {
-        if fault_at[k].is_some() || g.gated[k] {
-            cleaned.drop_point(k);
-        }
-    }
-    let spike_pass = |cleaned: &TagObs| -> Result<(Vec<f64>, tagwright::tagmodel::Smoothed), String> {
-        let mut sm = f.smooth_with_outliers(cleaned, &clean.y).map_err(|e| e.to_string())?;
+    // (The passes differ only in which readings they leave out, so each
+    // has its own copy of the observations, not of the whole `clean`.)
+    let left_out = |drop: &dyn Fn(usize) -> bool| -> Vec<f64> {
+        clean.y.iter().enumerate().map(|(k, &y)| if drop(k) { f64::NAN } else { y }).collect()
+    };
+    let first = left_out(&|k| fault_at[k].is_some() || g.gated[k]);
+    let spike_pass = |y: &[f64]| -> Result<(Vec<f64>, tagwright::tagmodel::Smoothed), String> {
+        let mut sm = f.smooth_with_outliers_of(&clean, y, &clean.y).map_err(|e| e.to_string())?;
         Ok((std::mem::take(&mut sm.outlier), sm))
     };
-    let (o1, sm1) = spike_pass(&cleaned)?;
+    let (o1, sm1) = spike_pass(&first)?;
     let prior = fault_at.clone();
     let is_spike =
         |o: &[f64], k: usize| obs.row[k].is_some() && prior[k].is_none() && o[k].is_finite() && o[k].abs() > cfg.spike;
-    let mut second = clean.clone();
-    for k in 0..n {
-        if fault_at[k].is_some() || is_spike(&o1, k) {
-            second.drop_point(k);
-        }
-    }
+    let second = left_out(&|k| fault_at[k].is_some() || is_spike(&o1, k));
     // The second pass changes nothing when it would leave out exactly the
     // readings the first one did.
-    let same = (0..n).all(|k| second.y[k].is_nan() == cleaned.y[k].is_nan());
+    let same = (0..n).all(|k| second[k].is_nan() == first[k].is_nan());
+    drop(first);
     let (o2, sm) = if same { (o1, sm1) } else { spike_pass(&second)? };
-    let mut cleaned = clean.clone();
+    drop(second);
+    let mut cleaned = clean.y.clone();
     for k in 0..n {
         if !is_spike(&o2, k) {
             if fault_at[k].is_some() {
-                cleaned.drop_point(k);
+                cleaned[k] = f64::NAN;
             }
             continue;
         }
-        cleaned.drop_point(k);
+        cleaned[k] = f64::NAN;
         if in_transient(k) {
             vetoed += 1;
             continue;
@@ -295,13 +292,13 @@ pub fn find(
     candidates.sort_by_key(|c| c.0);
     let mut steps: Vec<(usize, f64, f64, f64)> = Vec::new(); // (k, stat, size, size_sd)
     for &(k, stat) in &candidates {
-        let (size, size_sd) = step_size(&cleaned.y, k, 12);
+        let (size, size_sd) = step_size(&cleaned, k, 12);
         if !size.is_finite() {
             continue;
         }
         // It must persist: without the reading at k the levels before and
         // after still differ (a lone outlier does not).
-        let (later, later_sd) = step_size_skip(&cleaned.y, k, 12);
+        let (later, later_sd) = step_size_skip(&cleaned, k, 12);
         if !(later.is_finite() && later.abs() > 3.0 * later_sd && later.signum() == size.signum()) {
             continue;
         }

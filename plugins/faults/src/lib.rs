@@ -256,17 +256,21 @@ impl FaultsStep {
         let mut rounds_run = 0;
         let rounds = if self.params.params.is_some() { 1 } else { self.params.rounds };
         for round in 0..rounds {
-            let mut obs = base.clone();
-            for (k, &x) in excluded.iter().enumerate() {
-                if x {
-                    obs.drop_point(k);
-                }
-            }
             // The readings this round's fit sees (all, or a subsample).
-            let sample = obs.sample_ranges(self.params.fit_points, FIT_BLOCKS);
+            let sample;
             let f = match &self.params.params {
-                Some(given) => Fitted::given(&spec, given).map_err(|e| self.fail(&tag, e))?,
+                Some(given) => {
+                    sample = None;
+                    Fitted::given(&spec, given).map_err(|e| self.fail(&tag, e))?
+                }
                 None => {
+                    let mut obs = base.clone();
+                    for (k, &x) in excluded.iter().enumerate() {
+                        if x {
+                            obs.drop_point(k);
+                        }
+                    }
+                    sample = obs.sample_ranges(self.params.fit_points, FIT_BLOCKS);
                     // Start from this round's predecessor, else from the
                     // parameters the last run carried over for this model.
                     let start = fitted.as_ref().map(|f: &Fitted| f.params.clone()).or_else(|| carried(work, &spec));
