@@ -5,10 +5,15 @@
 #  - a bare arrow-rs read + write of the file (examples/bare_copy.rs, one thread);
 #  - `tagwright run` with quality, range, faults and fill, parameters fitted
 #    per tag on the run's window (two fit rounds), on 1 and on 2 threads;
-#  - the same chain with the model parameters given in the pipeline (no fit).
+#  - the same chain with the model parameters given in the pipeline (no fit);
+#  - `carried`: the fitted chain with `--state`, its parameters carried from
+#    an earlier shift of the same tags (a file of other draws, run untimed
+#    first), as a scheduled run each shift does: each tag's fit then starts
+#    from one point instead of a grid of starts.
 # Speed = rows per second; the figure of merit is engine speed / bare speed
 # (targets: >= 0.25 with fitting, >= 0.5 with parameters given).
-# Usage: [CASES='fit 2,given 2'] bash core/benches/chain_vs_bare.sh [HOURS] [TAGS...]   (defaults: all four cases, 12, 2000)
+# Usage: [CASES='fit 2,given 2,carried 2'] bash core/benches/chain_vs_bare.sh [HOURS] [TAGS...]
+#   (defaults: fit, given and carried on 1 and 2 threads; 12 h; 2,000 tags)
 # Files go to $BENCH_DIR (default: a temporary directory, removed at the end).
 set -euo pipefail
 repo="$(cd "$(dirname "${BASH_SOURCE[0]}")/../.." && pwd)"
@@ -63,10 +68,25 @@ for tags in "${tag_counts[@]}"; do
     "$bin/examples/gen_long" "$tags" "$hours" "$file" --unit-scale > /dev/null
     rows=$((tags * hours * 3600))
     bare=$(seconds "$bin/examples/bare_copy" "$file" "$dir/copy.parquet" zstd --reps 1 --only bare)
-    IFS=, read -r -a cases <<< "${CASES:-fit 1,fit 2,given 1,given 2}"
+    IFS=, read -r -a cases <<< "${CASES:-fit 1,fit 2,given 1,given 2,carried 1,carried 2}"
+    if [[ " ${cases[*]} " == *" carried "* ]]; then
+        # The earlier shift: other draws of the same tags, fitted, state kept.
+        "$bin/examples/gen_long" "$tags" "$hours" "$dir/earlier.parquet" --unit-scale --seed 7 > /dev/null
+        rm -rf "$dir/earlier_state"
+        "$bin/tagwright" run --pipeline "$dir/fit.yaml" --input "$dir/earlier.parquet" --out "$dir/earlier_run" \
+            --state "$dir/earlier_state" > "$dir/cmd.out" 2>&1 || { cat "$dir/cmd.out" >&2; exit 1; }
+        rm -rf "$dir/earlier.parquet" "$dir/earlier_run"
+    fi
     for case in "${cases[@]}"; do
         read -r kind threads <<< "$case"
-        s=$(seconds "$bin/tagwright" run --pipeline "$dir/$kind.yaml" --input "$file" --out "$dir/run" --threads "$threads")
+        extra=()
+        yaml="$kind"
+        if [ "$kind" = carried ]; then
+            rm -rf "$dir/state" && cp -r "$dir/earlier_state" "$dir/state"
+            extra=(--state "$dir/state")
+            yaml=fit
+        fi
+        s=$(seconds "$bin/tagwright" run --pipeline "$dir/$yaml.yaml" --input "$file" --out "$dir/run" --threads "$threads" "${extra[@]}")
         ratio=$(awk -v a="$s" -v b="$bare" 'BEGIN { printf "%.2f", b / a }')
         printf '%-6s %-10s %-8s %-22s %-8s %-8s\n' "$tags" "$rows" "$bare" "$kind params, $threads thr" "$s" "$ratio"
     done

@@ -4,7 +4,7 @@
 //! sorted by tag then time, as a historian export usually is.
 //!
 //! ```text
-//! cargo run --release -p tagwright --example gen_long -- TAGS HOURS OUT.parquet [--unit-scale]
+//! cargo run --release -p tagwright --example gen_long -- TAGS HOURS OUT.parquet [--unit-scale] [--seed N]
 //! ```
 //!
 //! Each tag gets its own level and scale (0.5 to 2.5): x_t = 0.995 x_{t-1} +
@@ -16,7 +16,8 @@
 //! Columns: `tag` (dictionary string), `ts` (timestamp[us, UTC]), `value`
 //! (float64: a slow AR(1) wander plus noise, with rare NaN), `quality`
 //! (UInt8 OPC quality byte: mostly 192, some 64 and 0). Seeded: the same
-//! arguments give the same file.
+//! arguments give the same file; `--seed N` gives other draws of the same
+//! tags (another shift of the same plant).
 
 use std::sync::Arc;
 
@@ -45,8 +46,14 @@ fn run() -> Result<(), Box<dyn std::error::Error>> {
     let mut args: Vec<String> = std::env::args().skip(1).collect();
     let unit_scale = args.iter().any(|a| a == "--unit-scale");
     args.retain(|a| a != "--unit-scale");
+    let mut seed = 20_260_301u64;
+    if let Some(i) = args.iter().position(|a| a == "--seed") {
+        let text = args.get(i + 1).ok_or("--seed needs a whole number")?;
+        seed = text.parse().map_err(|_| format!("--seed `{text}` is not a whole number"))?;
+        args.drain(i..i + 2);
+    }
     let [tags, hours, out] = args.as_slice() else {
-        return Err("usage: gen_long TAGS HOURS OUT.parquet [--unit-scale]".into());
+        return Err("usage: gen_long TAGS HOURS OUT.parquet [--unit-scale] [--seed N]".into());
     };
     let n_tags: usize = tags.parse().map_err(|_| format!("TAGS `{tags}` is not a whole number"))?;
     let hours: f64 = hours.parse().map_err(|_| format!("HOURS `{hours}` is not a number"))?;
@@ -64,7 +71,7 @@ fn run() -> Result<(), Box<dyn std::error::Error>> {
     ]));
     let file = std::fs::File::create(out)?;
     let mut w = ArrowWriter::try_new(file, schema.clone(), Some(writer_properties(Compression::Snappy, Vec::new())))?;
-    let mut rng = Rng::new(20_260_301);
+    let mut rng = Rng::new(seed);
     let mut buf = Batch::default();
     let started = std::time::Instant::now();
     for name in &names {

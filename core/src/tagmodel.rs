@@ -83,7 +83,17 @@ impl TagObs {
         max_quiet_us: i64,
     ) -> TagObs {
         let n = table.len();
-        let mut o = TagObs::default();
+        // One grid point per row at least (an exception-reported tag adds
+        // its quiet stretches' points to that).
+        let mut o = TagObs {
+            y: Vec::with_capacity(n),
+            dt: Vec::with_capacity(n),
+            w: Vec::new(),
+            extra_var: Vec::with_capacity(n),
+            base_w: Vec::with_capacity(n),
+            ts_us: Vec::with_capacity(n),
+            row: Vec::with_capacity(n),
+        };
         let period = table.period_us.max(1);
         let deadband = match table.sampling {
             Sampling::Exception { deadband } => Some(deadband),
