@@ -448,8 +448,8 @@ impl Fitted {
                     let (z, d) = self.signal_row();
                     let m = z.len();
                     for t in 0..n {
-                        mean.push(signal(&z, d, &sm.state[t * m..(t + 1) * m]));
-                        sd.push(signal_var(&z, &sm.cov[t * m * m..(t + 1) * m * m]).sqrt());
+                        mean.push(ssm::signal_of(&z, d, &sm.state[t * m..(t + 1) * m]));
+                        sd.push(ssm::signal_var_of(&z, &sm.cov[t * m * m..(t + 1) * m * m]).sqrt());
                     }
                     Vec::new()
                 }
@@ -487,34 +487,14 @@ impl Fitted {
                 *out_t = sm.del[t];
                 continue;
             }
-            let mean = signal(&z, d, &sm.state[t * m..(t + 1) * m]);
-            let var = signal_var(&z, &sm.cov[t * m * m..(t + 1) * m * m]) + h * obs.w[t];
+            let mean = ssm::signal_of(&z, d, &sm.state[t * m..(t + 1) * m]);
+            let var = ssm::signal_var_of(&z, &sm.cov[t * m * m..(t + 1) * m * m]) + h * obs.w[t];
             if var > 0.0 {
                 *out_t = (y - mean) / var.sqrt();
             }
         }
         out
     }
-}
-
-/// z a + d.
-#[inline]
-fn signal(z: &[f64], d: f64, a: &[f64]) -> f64 {
-    d + z.iter().zip(a).map(|(z, a)| z * a).sum::<f64>()
-}
-
-/// z V z' for a column-major m x m block V, not below zero.
-#[inline]
-fn signal_var(z: &[f64], v: &[f64]) -> f64 {
-    let m = z.len();
-    let mut s = 0.0;
-    for (c, zc) in z.iter().enumerate() {
-        if *zc == 0.0 {
-            continue;
-        }
-        s += zc * z.iter().zip(&v[c * m..(c + 1) * m]).map(|(zr, v)| zr * v).sum::<f64>();
-    }
-    s.max(0.0)
 }
 
 /// Result of [`Fitted::smooth`].

@@ -680,6 +680,29 @@ where
     out.finish_loglik();
 }
 
+/// A S A' for a 2 x 2 matrix A = [a00, a01, a10, a11] (row by row) and a
+/// symmetric S = [s00, s01, s11]; returns the same three entries.
+#[inline]
+pub(crate) fn congruence2(a: [f64; 4], s: [f64; 3]) -> [f64; 3] {
+    let [a00, a01, a10, a11] = a;
+    let [s00, s01, s11] = s;
+    let m00 = a00 * s00 + a01 * s01;
+    let m01 = a00 * s01 + a01 * s11;
+    let m10 = a10 * s00 + a11 * s01;
+    let m11 = a10 * s01 + a11 * s11;
+    [m00 * a00 + m01 * a01, m00 * a10 + m01 * a11, m10 * a10 + m11 * a11]
+}
+
+/// A variance with negative round-off cleared (NaN is left alone, as in [`tidy`]).
+#[inline]
+pub(crate) fn clear_negative(x: f64) -> f64 {
+    if x < 0.0 {
+        0.0
+    } else {
+        x
+    }
+}
+
 /// The mutable state [`run_two_states`] works on.
 struct TwoStateRefs<'a> {
     /// State (2).
@@ -794,15 +817,10 @@ fn run_two_states(
         }
         (a0, a1) = (t00 * a0 + t01 * a1 + c0, t10 * a0 + t11 * a1 + c1);
         // T P T' + RQR' on the symmetric P.
-        let m00 = t00 * p00 + t01 * p01;
-        let m01 = t00 * p01 + t01 * p11;
-        let m10 = t10 * p00 + t11 * p01;
-        let m11 = t10 * p01 + t11 * p11;
-        // Negative diagonal round-off is cleared (NaN is left alone, as in `tidy`).
-        let clear = |x: f64| if x < 0.0 { 0.0 } else { x };
-        p00 = clear(m00 * t00 + m01 * t01 + q00);
-        p01 = m00 * t10 + m01 * t11 + q01;
-        p11 = clear(m10 * t10 + m11 * t11 + q11);
+        let [s00, s01, s11] = congruence2([t00, t01, t10, t11], [p00, p01, p11]);
+        p00 = clear_negative(s00 + q00);
+        p01 = s01 + q01;
+        p11 = clear_negative(s11 + q11);
         t += 1;
         if allow_steady && plain && dt == 1.0 {
             let scale = p00.abs().max(p01.abs()).max(p11.abs()).max(f64::MIN_POSITIVE);

@@ -39,5 +39,5 @@ pub use error::{Result, SsmError};
 pub use filter::{filter, filter_into, FilterOptions, FilterOutput, Path};
 pub use fit::{fit, loglik, FitOptions, FitResult};
 pub use model::{Observations, StateSpace, StepRule};
-pub use smoother::{smooth, smooth_into, SmootherOutput};
+pub use smoother::{signal_of, signal_var_of, smooth, smooth_into, SmootherOutput};
 pub use spec::{Component, ModelSpec, ParamKind};

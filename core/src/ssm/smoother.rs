@@ -34,7 +34,7 @@
 
 use nalgebra::{allocator::Allocator, Const, DefaultAllocator, Dim, Dyn, OMatrix, OVector, U1};
 
-use super::filter::{omat, ovec, tidy, ElemKind, FilterOutput, Path};
+use super::filter::{clear_negative, congruence2, omat, ovec, tidy, ElemKind, FilterOutput, Path};
 use super::model::{Observations, StateSpace};
 use super::scalar;
 
@@ -101,22 +101,36 @@ impl SmootherOutput {
     /// Smoothed signal z a_hat_t + d for observation element i of the model.
     pub fn signal(&self, model: &StateSpace, t: usize, i: usize) -> f64 {
         let m = self.m;
-        let a = &self.state[t * m..(t + 1) * m];
-        model.d[i] + (0..m).map(|j| model.z[(i, j)] * a[j]).sum::<f64>()
+        let z: Vec<f64> = model.z.row(i).iter().copied().collect();
+        signal_of(&z, model.d[i], &self.state[t * m..(t + 1) * m])
     }
 
     /// Variance of the smoothed signal, z V_t z'.
     pub fn signal_var(&self, model: &StateSpace, t: usize, i: usize) -> f64 {
         let m = self.m;
-        let v = &self.cov[t * m * m..(t + 1) * m * m];
-        let mut s = 0.0;
-        for c in 0..m {
-            for r in 0..m {
-                s += model.z[(i, r)] * v[c * m + r] * model.z[(i, c)];
-            }
-        }
-        s.max(0.0)
+        let z: Vec<f64> = model.z.row(i).iter().copied().collect();
+        signal_var_of(&z, &self.cov[t * m * m..(t + 1) * m * m])
     }
+}
+
+/// z a + d for one row z of Z and a state a (for loops over many times,
+/// with z taken out of the model once).
+#[inline]
+pub fn signal_of(z: &[f64], d: f64, a: &[f64]) -> f64 {
+    d + z.iter().zip(a).map(|(z, a)| z * a).sum::<f64>()
+}
+
+/// z V z' for a row z of Z and a column-major m x m block V, not below zero.
+#[inline]
+pub fn signal_var_of(z: &[f64], v: &[f64]) -> f64 {
+    let m = z.len();
+    let mut s = 0.0;
+    for (c, zc) in z.iter().enumerate() {
+        for (r, zr) in z.iter().enumerate() {
+            s += zr * v[c * m + r] * zc;
+        }
+    }
+    s.max(0.0)
 }
 
 /// Smooths a stored filter run. Panics if `filt` was run without `store`
@@ -354,8 +368,7 @@ fn run_two_states(
         let v10 = p10 - (p10 * m00 + p11 * m10);
         let v11 = p11 - (p10 * m01 + p11 * m11);
         let off = 0.5 * (v01 + v10);
-        let clear = |x: f64| if x < 0.0 { 0.0 } else { x };
-        out.cov[4 * t..4 * t + 4].copy_from_slice(&[clear(v00), off, off, clear(v11)]);
+        out.cov[4 * t..4 * t + 4].copy_from_slice(&[clear_negative(v00), off, off, clear_negative(v11)]);
         if keep_aux {
             out.r[2 * t] = r0;
             out.r[2 * t + 1] = r1;
@@ -370,13 +383,7 @@ fn run_two_states(
                 *cur_dt = dt;
             }
             (r0, r1) = (t00 * r0 + t10 * r1, t01 * r0 + t11 * r1);
-            let m00 = n00 * t00 + n01 * t10;
-            let m01 = n00 * t01 + n01 * t11;
-            let m10 = n01 * t00 + n11 * t10;
-            let m11 = n01 * t01 + n11 * t11;
-            n00 = t00 * m00 + t10 * m10;
-            n01 = t00 * m01 + t10 * m11;
-            n11 = t01 * m01 + t11 * m11;
+            [n00, n01, n11] = congruence2([t00, t10, t01, t11], [n00, n01, n11]);
         }
     }
     ([r0, r1], [n00, n01, n11])
