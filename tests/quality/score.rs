@@ -218,8 +218,12 @@ pub struct DriftScore {
     pub rel_error: Option<f64>,
     /// A row of the tag inside the event is `replaced` with fault `drift`.
     pub wrongly_corrected: bool,
-    /// `extra.drift.attributed == false`, or a kept row inside the event has a fault set.
+    /// `extra.drift.attributed == false` with a verdict that says it cannot
+    /// attribute, or a kept row inside the event has a fault set.
     pub reported: bool,
+    /// A lone transmitter's `extra.drift.moved` is beyond its tolerance (the
+    /// movement was seen, not only the inability to attribute it).
+    pub moved_beyond: bool,
 }
 
 /// False alarms on fault-free tags (c).
@@ -473,6 +477,12 @@ impl Ctx<'_> {
             r.drift_attributed() == Some(false) && r.drift_verdict().is_some_and(|v| v.contains("cannot attribute"))
         });
         let reported = said || flagged;
+        let moved_beyond = record.is_some_and(|r| {
+            let d = r.extra.get("drift");
+            let moved = d.and_then(|d| d.get("moved")).and_then(|m| m.as_f64());
+            let tol = d.and_then(|d| d.get("tolerance")).and_then(|m| m.as_f64());
+            matches!((moved, tol), (Some(m), Some(t)) if m.abs() > t)
+        });
         DriftScore {
             case: self.case.to_string(),
             tag: ev.tag.to_string(),
@@ -484,6 +494,7 @@ impl Ctx<'_> {
             rel_error,
             wrongly_corrected,
             reported,
+            moved_beyond,
         }
     }
 

@@ -332,10 +332,11 @@ impl fmt::Display for Scores {
                 f,
                 "    non-attributable drifts",
                 format!(
-                    "{} events: wrongly corrected {}, reported {}",
+                    "{} events: wrongly corrected {}, reported {} (lone transmitter moved beyond tolerance: {})",
                     un.len(),
                     un.iter().filter(|d| d.wrongly_corrected).count(),
-                    un.iter().filter(|d| d.reported).count()
+                    un.iter().filter(|d| d.reported).count(),
+                    un.iter().filter(|d| d.moved_beyond).count()
                 ),
             )?;
             return Ok(());
@@ -349,7 +350,13 @@ impl fmt::Display for Scores {
                 let truth = d.bias_true.map_or_else(|| "-".into(), num);
                 format!("labelled {}, bias end {est} vs true {truth}, error {err}", yes(d.labelled))
             } else {
-                format!("{}; wrongly corrected {}, reported {}", d.why, yes(d.wrongly_corrected), yes(d.reported))
+                format!(
+                    "{}; wrongly corrected {}, reported {}, moved beyond tolerance {}",
+                    d.why,
+                    yes(d.wrongly_corrected),
+                    yes(d.reported),
+                    yes(d.moved_beyond)
+                )
             };
             line(f, &name, value)?;
         }

@@ -435,11 +435,25 @@ fn a_lone_transmitter_reports_its_movement_and_changes_nothing() {
     let t = &lone[0].table;
     assert!(t.status == drifted.status && t.fault == drifted.fault, "rows changed");
     assert!(t.value.iter().zip(&drifted.value).all(|(a, b)| a.to_bits() == b.to_bits()), "values changed");
-    // Without the drift: within tolerance, no note.
+    // Without the drift: within tolerance, no note, and still no all-clear.
     let mut steady = vec![TagWork { table: before, report: Default::default(), ..lone[0].clone() }];
     run(&mut steady, json!({"tolerance": 0.5}));
-    assert_eq!(extra(&steady[0])["verdict"], "within tolerance", "{}", extra(&steady[0]));
+    assert_eq!(extra(&steady[0])["verdict"], crate::lone::MOVED_WITHIN, "{}", extra(&steady[0]));
+    assert_eq!(extra(&steady[0])["attributed"], false);
+    assert!(extra(&steady[0])["moved"].as_f64().unwrap().abs() < 0.5);
     assert!(steady[0].report.notes.is_empty());
+    // Too few usable readings in the last eighth (all but 3 marked bad):
+    // not assessed, and still no all-clear.
+    let mut sparse = vec![TagWork { table: drifted.clone(), report: Default::default(), ..lone[0].clone() }];
+    for i in n - n / 8..n - 3 {
+        sparse[0].table.status[i] = Status::Rejected;
+        sparse[0].table.fault[i] = Some(Fault::BadQuality);
+        sparse[0].table.decided_by[i] = 0;
+    }
+    run(&mut sparse, json!({"tolerance": 0.5}));
+    let e = extra(&sparse[0]);
+    assert_eq!(e["verdict"], crate::lone::NOT_ASSESSED, "{e}");
+    assert!(e["moved"].is_null(), "{e}");
 }
 
 #[test]
