@@ -368,4 +368,37 @@ fn the_demo_shows_every_status_and_fault_with_one_event_per_change() {
     let tt = recs.iter().find(|r| r["record"] == "tag" && r["tag"] == "TT-3105B.PV").unwrap();
     let bias = tt["extra"]["drift"]["bias_end"].as_f64().unwrap();
     assert!((bias - 2.1).abs() < 0.2, "{bias}");
+
+    // Other decoders read the dictionary columns (written from runs of keys,
+    // in pages of 20,000 rows) as this one does: rows per (tag, status,
+    // fault) from pyarrow and polars (PyPI) against arrow-rs above, and a
+    // filter on one tag, pushed down by pyarrow, returns that tag's rows.
+    let mut tally: std::collections::BTreeMap<String, u64> = Default::default();
+    for i in 0..c.tag.len() {
+        *tally.entry(format!("{}|{}|{}", c.tag[i], c.status[i], c.fault[i].as_deref().unwrap_or("-"))).or_default() +=
+            1;
+    }
+    let want = sb.write("tally.json", serde_json::to_string(&tally).unwrap());
+    let script = r#"
+import sys, json, collections
+import pyarrow.parquet as pq, polars as pl
+path, want = sys.argv[1], json.load(open(sys.argv[2]))
+t = pq.read_table(path, columns=["tag", "status", "fault"]).to_pydict()
+got = collections.Counter(f"{a}|{b}|{c or '-'}" for a, b, c in zip(t["tag"], t["status"], t["fault"]))
+assert dict(got) == want, "pyarrow differs"
+df = pl.read_parquet(path, columns=["tag", "status", "fault"]).with_columns(pl.col("fault").cast(pl.Utf8).fill_null("-"))
+rows = df.group_by(["tag", "status", "fault"]).len().rows()
+assert {f"{a}|{b}|{c}": n for a, b, c, n in rows} == want, "polars differs"
+one = pq.read_table(path, filters=[("tag", "==", "FT-3101B.PV")], columns=["tag"])
+assert one.num_rows == sum(n for k, n in want.items() if k.startswith("FT-3101B.PV|")), one.num_rows
+print("ok", len(want))
+"#;
+    let py = sb.write("tally.py", script);
+    let out = std::process::Command::new(tagwright_tests::python())
+        .arg(&py)
+        .arg(out.join("run/cleaned.parquet"))
+        .arg(&want)
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}\n{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
 }

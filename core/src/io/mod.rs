@@ -96,6 +96,8 @@ mod long_csv;
 mod long_pq;
 mod output;
 mod output_encode;
+mod output_keys;
+mod output_sink;
 mod quality;
 mod time;
 mod wide;

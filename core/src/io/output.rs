@@ -8,13 +8,14 @@
 //! | `raw` | float64 | on `filled` rows (a reading without a finite value stays NaN) |
 //! | `value` | float64 | where the value is NaN |
 //! | `std` | float64 | where the standard deviation is NaN |
-//! | `status` | dictionary of Utf8 (Int32 keys): `ok`, `filled`, `replaced`, `rejected` (stored as plain strings) | never |
+//! | `status` | dictionary of Utf8 (Int32 keys): `ok`, `filled`, `replaced`, `rejected` | never |
 //! | `fault` | dictionary of Utf8 (Int32 keys): `spike`, `stuck`, ... | where no fault |
 //!
-//! File metadata: `tagwright.run_id` and `tagwright.version`. Encoding (see
-//! [`writer_properties`]): no dictionary for the time, the three float
-//! columns and `status` (plain strings); delta encoding for `ts`;
-//! byte-stream-split for `raw`, `value` and `std`; minimum/maximum
+//! File metadata: `tagwright.run_id` and `tagwright.version`. Encoding:
+//! `ts`, `raw`, `value`, `std` as [`writer_properties`] says (no dictionary,
+//! delta encoding for `ts`, byte-stream-split for the floats, the chosen
+//! codec); `tag`, `status`, `fault` dictionary-encoded, pages uncompressed
+//! (they hold only run lengths; see `output_keys.rs`); minimum/maximum
 //! statistics for `tag` and `ts` only; row groups of [`ROW_GROUP_ROWS`] rows.
 //!
 //! The writer writes `<path>.partial` and renames it to `<path>` in
@@ -43,6 +44,7 @@ use parquet::file::properties::{EnabledStatistics, WriterProperties};
 use parquet::schema::types::ColumnPath;
 
 use super::output_encode::{spawn, Buffer, Encoder, Worker};
+use super::output_sink::Sink;
 use super::{IoError, Result};
 use crate::pipeline::Compression;
 use crate::series::TagTable;
@@ -73,9 +75,10 @@ pub fn cleaned_schema() -> SchemaRef {
     ]))
 }
 
-/// Writer settings of `cleaned.parquet`, also used by the bare read+write
+/// Writer settings of `cleaned.parquet` (for the columns written by arrow-rs:
+/// `ts`, `raw`, `value`, `std`), also used by the bare read+write
 /// benchmark: the chosen compression (zstd level 1 or snappy); no
-/// dictionary for `ts`, `raw`, `value`, `std`, `status`; delta encoding for
+/// dictionary for `ts`, `raw`, `value`, `std`; delta encoding for
 /// `ts`; byte-stream-split for the floats; statistics for `tag` and `ts`
 /// only; row groups of [`ROW_GROUP_ROWS`] rows; the given key-value metadata.
 pub fn writer_properties(compression: Compression, metadata: Vec<KeyValue>) -> WriterProperties {
@@ -101,11 +104,6 @@ pub fn writer_properties(compression: Compression, metadata: Vec<KeyValue>) -> W
     for c in ["raw", "value", "std", "status", "fault"] {
         b = b.set_column_statistics_enabled(ColumnPath::from(c), EnabledStatistics::None);
     }
-    // `status` is `ok` on nearly every row: plain strings compressed by the
-    // page codec cost a third of looking each row up in a dictionary.
-    b = b
-        .set_column_dictionary_enabled(ColumnPath::from("status"), false)
-        .set_column_encoding(ColumnPath::from("status"), Encoding::PLAIN);
     b.build()
 }
 
@@ -148,6 +146,10 @@ impl CleanedWriter {
         name.push(".partial");
         let partial = PathBuf::from(name);
         let file = File::create(&partial).map_err(|e| write_error(&partial, e))?;
+        // With encoding in the background, the file is written on a thread
+        // of its own too (output_sink.rs).
+        let file =
+            if threads > 1 { Sink::threaded(file).map_err(|e| write_error(&partial, e))? } else { Sink::Direct(file) };
         let metadata = vec![
             KeyValue::new(META_RUN_ID.to_string(), run_id.to_string()),
             KeyValue::new(META_VERSION.to_string(), env!("CARGO_PKG_VERSION").to_string()),

@@ -1,13 +1,13 @@
 //! The encoding side of [`super::CleanedWriter`]: a background thread that
-//! turns buffered rows into Arrow arrays and Parquet row groups, so the
-//! caller reads and cleans the next tags while earlier ones are encoded.
+//! turns buffered rows into Parquet row groups, so the caller reads and
+//! cleans the next tags while earlier ones are encoded.
 //!
-//! Each batch's columns are encoded as two groups on two threads (the
-//! worker and one long-lived helper thread, so no thread, and no fresh
-//! allocator heap, is started per batch): the Parquet encoder looks every
-//! row of the dictionary column `tag` up in its dictionary, which makes it
-//! about as costly as two or three float columns. The file is the same as a
-//! one-thread `ArrowWriter` writes.
+//! The float and time columns go through arrow-rs's column writers; the
+//! dictionary string columns `tag`, `status` and `fault` are built from
+//! their keys by [`super::output_keys`] (the Arrow writer would look every
+//! row up by its string). Each batch's columns are encoded as two groups on
+//! two threads (the worker and one long-lived helper thread, so no thread,
+//! and no fresh allocator heap, is started per batch).
 
 use std::fs::File;
 use std::path::{Path, PathBuf};
@@ -16,26 +16,25 @@ use std::sync::mpsc::{Receiver, SyncSender};
 use std::sync::Arc;
 
 use arrow_array::builder::NullBufferBuilder;
-use arrow_array::types::Int32Type;
-use arrow_array::{
-    ArrayRef, DictionaryArray, Float64Array, Int32Array, RecordBatch, StringArray, TimestampMicrosecondArray,
-};
+use arrow_array::{Array, ArrayRef, Float64Array, TimestampMicrosecondArray};
 use arrow_schema::SchemaRef;
 use parquet::arrow::arrow_writer::{compute_leaves, ArrowColumnWriter, ArrowRowGroupWriterFactory};
 use parquet::errors::ParquetError;
 use parquet::file::writer::SerializedFileWriter;
 
 use super::output::ROW_GROUP_ROWS;
+use super::output_keys::KeyChunk;
+use super::output_sink::Sink;
 use super::{IoError, Result};
 use crate::series::{Fault, Status, TagTable};
 
-/// Columns encoded on the helper thread: `tag`, `raw`, `fault`; the worker
-/// encodes `ts`, `value`, `std`, `status`. (The dictionary column `tag`
-/// costs about as much as two or three of the float and time columns, since
-/// every row is looked up in its dictionary; `status` is plain strings and
-/// `fault` is mostly null. Measured on 8.6 M rows, this split and the one
-/// with `raw` on the worker take the same CPU time.)
-const HELPER_COLUMNS: [usize; 3] = [0, 2, 6];
+/// Column positions in the cleaned schema.
+const TAG: usize = 0;
+const RAW: usize = 2;
+const STATUS: usize = 5;
+const FAULT: usize = 6;
+/// The columns written by arrow-rs's column writers: `ts`, `raw`, `value`, `std`.
+const ARROW_COLUMNS: [usize; 4] = [1, 2, 3, 4];
 
 /// Rows waiting to be encoded, column by column.
 #[derive(Debug, Default)]
@@ -108,15 +107,18 @@ impl Buffer {
 /// The encoder running on the worker thread.
 pub(super) struct Encoder {
     partial: PathBuf,
-    file: SerializedFileWriter<File>,
+    file: SerializedFileWriter<Sink>,
     factory: ArrowRowGroupWriterFactory,
     schema: SchemaRef,
-    /// Column writers of the row group being filled, and its rows.
-    group: Option<Vec<ArrowColumnWriter>>,
+    /// Column writers of the row group being filled (those of
+    /// [`ARROW_COLUMNS`], by column position), its key columns (`tag`,
+    /// `status`, `fault`), and its rows.
+    group: Option<Group>,
     group_rows: usize,
     groups_done: usize,
-    /// The helper thread that encodes [`HELPER_COLUMNS`] while the worker
-    /// encodes the others; `None` when encoding runs on one thread.
+    /// The helper thread that encodes `raw` and the key columns while the
+    /// worker encodes `ts`, `value`, `std`; `None` when encoding runs on one
+    /// thread. (`raw` and `value` are the costly columns.)
     helper: Option<rayon::ThreadPool>,
 }
 
@@ -124,10 +126,24 @@ fn write_error(path: &Path, e: impl Into<super::BoxError>) -> IoError {
     IoError::Write { path: path.to_path_buf(), source: e.into() }
 }
 
+/// The row group being filled: arrow-rs writers by column position, and
+/// the key columns `tag`, `status`, `fault`.
+type Group = (Vec<(usize, ArrowColumnWriter)>, [KeyChunk; 3]);
+
+/// One buffer's columns: the Arrow arrays of [`ARROW_COLUMNS`] and the keys
+/// of the dictionary columns.
+struct Columns {
+    arrays: Vec<ArrayRef>,
+    tags: Vec<String>,
+    tag_keys: Vec<i32>,
+    status: Vec<i32>,
+    fault: Vec<Option<i32>>,
+}
+
 impl Encoder {
     pub(super) fn new(
         partial: PathBuf,
-        file: SerializedFileWriter<File>,
+        file: SerializedFileWriter<Sink>,
         factory: ArrowRowGroupWriterFactory,
         schema: SchemaRef,
         parallel: bool,
@@ -147,11 +163,12 @@ impl Encoder {
 
     /// Encodes one buffer of rows, closing row groups as they fill.
     pub(super) fn push(&mut self, b: Buffer) -> Result<()> {
-        let batch = self.batch(b)?;
+        let cols = columns(b);
+        let rows = cols.tag_keys.len();
         let mut at = 0;
-        while at < batch.num_rows() {
-            let n = (ROW_GROUP_ROWS - self.group_rows).min(batch.num_rows() - at);
-            self.encode(&batch.slice(at, n))?;
+        while at < rows {
+            let n = (ROW_GROUP_ROWS - self.group_rows).min(rows - at);
+            self.encode(&cols, at, n)?;
             at += n;
             if self.group_rows == ROW_GROUP_ROWS {
                 self.close_group()?;
@@ -164,7 +181,8 @@ impl Encoder {
     pub(super) fn finish(mut self) -> Result<File> {
         self.close_group()?;
         let partial = self.partial.clone();
-        let file = self.file.into_inner().map_err(|e| write_error(&partial, e))?;
+        let sink = self.file.into_inner().map_err(|e| write_error(&partial, e))?;
+        let file = sink.finish().map_err(|e| write_error(&partial, e))?;
         file.sync_all().map_err(|e| write_error(&partial, e))?;
         Ok(file)
     }
@@ -185,46 +203,29 @@ impl Encoder {
         self.finish().map(Some)
     }
 
-    /// The buffered rows as a record batch of the cleaned schema.
-    fn batch(&self, b: Buffer) -> Result<RecordBatch> {
-        let err = |e: arrow_schema::ArrowError| write_error(&self.partial, e);
-        let dict = |keys: Int32Array, values: Vec<&str>| {
-            DictionaryArray::<Int32Type>::try_new(keys, Arc::new(StringArray::from(values)) as ArrayRef).map_err(err)
-        };
-        let tag = DictionaryArray::<Int32Type>::try_new(
-            Int32Array::from(b.tag_keys),
-            Arc::new(StringArray::from(b.tags)) as ArrayRef,
-        )
-        .map_err(err)?;
-        let status = dict(Int32Array::from(b.status), Status::ALL.iter().map(|s| s.as_str()).collect())?;
-        let fault = dict(Int32Array::from(b.fault), Fault::ALL.iter().map(|f| f.as_str()).collect())?;
-        let ts = TimestampMicrosecondArray::new(b.ts.into(), None).with_timezone("UTC");
-        let columns: Vec<ArrayRef> = vec![
-            Arc::new(tag),
-            Arc::new(ts),
-            Arc::new(raw_floats(b.raw, &b.raw_null)),
-            Arc::new(nullable_floats(b.value)),
-            Arc::new(nullable_floats(b.std)),
-            Arc::new(status),
-            Arc::new(fault),
-        ];
-        RecordBatch::try_new(self.schema.clone(), columns).map_err(err)
-    }
-
-    /// Encodes a batch into the current row group: the columns of
-    /// [`HELPER_COLUMNS`] on a helper thread, the others on this one.
-    fn encode(&mut self, batch: &RecordBatch) -> Result<()> {
+    /// Encodes rows `at..at + n` of `cols` into the current row group:
+    /// `raw` and the key columns on the helper thread, the others on this one.
+    fn encode(&mut self, cols: &Columns, at: usize, n: usize) -> Result<()> {
         let partial = &self.partial;
         if self.group.is_none() {
             let writers = self.factory.create_column_writers(self.groups_done).map_err(|e| write_error(partial, e))?;
-            self.group = Some(writers);
+            let writers: Vec<(usize, ArrowColumnWriter)> =
+                writers.into_iter().enumerate().filter(|(i, _)| ARROW_COLUMNS.contains(i)).collect();
+            let descr = self.file.schema_descr();
+            let keys = [
+                KeyChunk::new(descr.column(TAG), true),
+                KeyChunk::new(descr.column(STATUS), false),
+                KeyChunk::new(descr.column(FAULT), false),
+            ];
+            self.group = Some((writers, keys));
         }
-        let Some(writers) = self.group.as_mut() else { return Err(write_error(partial, "no row group")) };
+        let Some((writers, keys)) = self.group.as_mut() else { return Err(write_error(partial, "no row group")) };
+        let fields = self.schema.fields();
         let mut helper_jobs = Vec::new();
         let mut own_jobs = Vec::new();
-        for (i, ((w, field), col)) in writers.iter_mut().zip(self.schema.fields()).zip(batch.columns()).enumerate() {
-            let leaves = compute_leaves(field, col).map_err(|e| write_error(partial, e))?;
-            if HELPER_COLUMNS.contains(&i) {
+        for ((i, w), col) in writers.iter_mut().zip(&cols.arrays) {
+            let leaves = compute_leaves(&fields[*i], &col.slice(at, n)).map_err(|e| write_error(partial, e))?;
+            if *i == RAW {
                 helper_jobs.push((w, leaves));
             } else {
                 own_jobs.push((w, leaves));
@@ -238,15 +239,26 @@ impl Encoder {
             }
             Ok(())
         };
+        let write_keys = |keys: &mut [KeyChunk; 3]| -> parquet::errors::Result<()> {
+            let r = at..at + n;
+            let tags: Vec<&str> = cols.tags.iter().map(|t| t.as_str()).collect();
+            let [tag, status, fault] = keys;
+            tag.push(&cols.tag_keys[r.clone()], |k| usize::try_from(k).ok(), &tags)?;
+            let statuses: Vec<&str> = Status::ALL.iter().map(|s| s.as_str()).collect();
+            status.push(&cols.status[r.clone()], |k| usize::try_from(k).ok(), &statuses)?;
+            let faults: Vec<&str> = Fault::ALL.iter().map(|f| f.as_str()).collect();
+            fault.push(&cols.fault[r], |k| k.and_then(|k| usize::try_from(k).ok()), &faults)
+        };
         let Some(pool) = &self.helper else {
             own_jobs.extend(helper_jobs);
-            write_all(own_jobs).map_err(|e| write_error(partial, e))?;
-            self.group_rows += batch.num_rows();
+            write_all(own_jobs).and_then(|()| write_keys(keys)).map_err(|e| write_error(partial, e))?;
+            self.group_rows += n;
             return Ok(());
         };
-        let (mine, theirs) = on_two_threads(pool, || write_all(helper_jobs), || write_all(own_jobs));
+        let (mine, theirs) =
+            on_two_threads(pool, || write_all(helper_jobs).and_then(|()| write_keys(keys)), || write_all(own_jobs));
         mine.and(theirs).map_err(|e| write_error(partial, e))?;
-        self.group_rows += batch.num_rows();
+        self.group_rows += n;
         Ok(())
     }
 
@@ -254,35 +266,69 @@ impl Encoder {
     /// threads, as they were encoded) and appends it to the file.
     fn close_group(&mut self) -> Result<()> {
         let partial = &self.partial;
-        let Some(writers) = self.group.take() else { return Ok(()) };
-        let (helper_jobs, own_jobs): (Vec<_>, Vec<_>) =
-            writers.into_iter().enumerate().partition(|(i, _)| HELPER_COLUMNS.contains(i));
+        let Some((writers, keys)) = self.group.take() else { return Ok(()) };
+        if let Some(k) = keys.iter().find(|k| k.rows() != self.group_rows) {
+            return Err(write_error(partial, format!("{} rows in a key column of {}", k.rows(), self.group_rows)));
+        }
+        let (helper_jobs, own_jobs): (Vec<_>, Vec<_>) = writers.into_iter().partition(|(i, _)| *i == RAW);
         let close_all = |jobs: Vec<(usize, ArrowColumnWriter)>| {
             jobs.into_iter().map(|(i, w)| w.close().map(|c| (i, c))).collect::<parquet::errors::Result<Vec<_>>>()
         };
-        let mut chunks = match &self.helper {
+        let finish_keys = |keys: [KeyChunk; 3]| {
+            let [tag, status, fault] = keys;
+            Ok::<_, ParquetError>([(TAG, tag.finish()?), (STATUS, status.finish()?), (FAULT, fault.finish()?)])
+        };
+        let (mut chunks, key_chunks) = match &self.helper {
             None => {
                 let mut all = close_all(own_jobs).map_err(|e| write_error(partial, e))?;
                 all.extend(close_all(helper_jobs).map_err(|e| write_error(partial, e))?);
-                all
+                (all, finish_keys(keys).map_err(|e| write_error(partial, e))?)
             }
             Some(pool) => {
-                let (mine, theirs) = on_two_threads(pool, || close_all(helper_jobs), || close_all(own_jobs));
+                let (mine, theirs) =
+                    on_two_threads(pool, || Ok((close_all(helper_jobs), finish_keys(keys))), || close_all(own_jobs));
                 let mut all = mine.map_err(|e| write_error(partial, e))?;
-                all.extend(theirs.map_err(|e| write_error(partial, e))?);
-                all
+                let (raw, keys) = theirs.map_err(|e| write_error(partial, e))?;
+                all.extend(raw.map_err(|e| write_error(partial, e))?);
+                (all, keys.map_err(|e| write_error(partial, e))?)
             }
         };
         chunks.sort_by_key(|c| c.0);
+        let mut chunks = chunks.into_iter().peekable();
+        let mut key_chunks = key_chunks.into_iter().peekable();
         let mut rg = self.file.next_row_group().map_err(|e| write_error(partial, e))?;
-        for (_, chunk) in chunks {
-            chunk.append_to_row_group(&mut rg).map_err(|e| write_error(partial, e))?;
+        for i in 0..self.schema.fields().len() {
+            if chunks.peek().is_some_and(|c| c.0 == i) {
+                if let Some((_, chunk)) = chunks.next() {
+                    chunk.append_to_row_group(&mut rg).map_err(|e| write_error(partial, e))?;
+                }
+            } else if key_chunks.peek().is_some_and(|c| c.0 == i) {
+                if let Some((_, (bytes, close))) = key_chunks.next() {
+                    rg.append_column(&bytes, close).map_err(|e| write_error(partial, e))?;
+                }
+            } else {
+                return Err(write_error(partial, format!("no encoded chunk for column {i}")));
+            }
         }
         rg.close().map_err(|e| write_error(partial, e))?;
         self.groups_done += 1;
         self.group_rows = 0;
         Ok(())
     }
+}
+
+/// A buffer's columns: Arrow arrays for `ts`, `raw`, `value`, `std`, keys
+/// for the others.
+fn columns(b: Buffer) -> Columns {
+    let ts = TimestampMicrosecondArray::new(b.ts.into(), None).with_timezone("UTC");
+    let arrays: Vec<ArrayRef> = vec![
+        Arc::new(ts),
+        Arc::new(raw_floats(b.raw, &b.raw_null)),
+        Arc::new(nullable_floats(b.value)),
+        Arc::new(nullable_floats(b.std)),
+    ];
+    debug_assert!(arrays.iter().all(|a| a.len() == b.tag_keys.len()));
+    Columns { arrays, tags: b.tags, tag_keys: b.tag_keys, status: b.status, fault: b.fault }
 }
 
 /// The encoding thread: it returns the finished file (`None` when stopped early).
@@ -302,11 +348,11 @@ pub(super) fn spawn(encoder: Encoder, abort: Arc<AtomicBool>) -> Result<(SyncSen
 
 /// Runs `theirs` on the helper pool's thread and `mine` on this one, at
 /// once; returns (mine, theirs). A panic in `theirs` becomes an error.
-fn on_two_threads<T: Send>(
+fn on_two_threads<A: Send, B>(
     pool: &rayon::ThreadPool,
-    theirs: impl FnOnce() -> parquet::errors::Result<T> + Send,
-    mine: impl FnOnce() -> parquet::errors::Result<T>,
-) -> (parquet::errors::Result<T>, parquet::errors::Result<T>) {
+    theirs: impl FnOnce() -> parquet::errors::Result<A> + Send,
+    mine: impl FnOnce() -> parquet::errors::Result<B>,
+) -> (parquet::errors::Result<B>, parquet::errors::Result<A>) {
     let mut out = None;
     let slot = &mut out;
     let mine = pool.in_place_scope(|s| {

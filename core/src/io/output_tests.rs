@@ -142,11 +142,72 @@ fn round_trip_schema_metadata_and_encodings() {
             "raw" | "value" | "std" => assert!(enc.contains(&Encoding::BYTE_STREAM_SPLIT), "{name}: {enc:?}"),
             _ => {}
         }
-        if ["ts", "raw", "value", "std", "status"].contains(&name.as_str()) {
-            assert!(!enc.contains(&Encoding::RLE_DICTIONARY), "{name}: {enc:?}");
-        }
+        let dictionary = ["tag", "status", "fault"].contains(&name.as_str());
+        assert_eq!(enc.contains(&Encoding::RLE_DICTIONARY), dictionary, "{name}: {enc:?}");
         // Statistics only for the columns a reader prunes by.
         assert_eq!(c.statistics().is_some(), ["tag", "ts"].contains(&name.as_str()), "{name}: statistics");
+    }
+    let tag_stats = rg.column(0).statistics().unwrap();
+    assert_eq!(tag_stats.min_bytes_opt(), Some("FT-101.PV".as_bytes()));
+    assert_eq!(tag_stats.max_bytes_opt(), Some("TT-204.PV".as_bytes()));
+    assert_eq!(tag_stats.null_count_opt(), Some(0));
+}
+
+/// Offset index of every column and column index of `tag`, as a reader
+/// that prunes pages sees them.
+fn page_index(path: &Path) -> parquet::file::metadata::ParquetMetaData {
+    let opts = parquet::file::serialized_reader::ReadOptionsBuilder::new().with_page_index().build();
+    let r = SerializedFileReader::new_with_options(std::fs::File::open(path).unwrap(), opts).unwrap();
+    r.metadata().clone()
+}
+
+#[test]
+fn key_columns_span_pages_with_nulls_and_keep_a_page_index() {
+    // Long tags whose status and fault change across page boundaries
+    // (pages of 20,000 rows), a fault-free tag (no fault in a whole page),
+    // and row groups holding several tags.
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("keys.parquet");
+    let n = 3 * super::super::output_keys::PAGE_ROWS / 2 + 11;
+    let mut tables = Vec::new();
+    for k in 0..3 {
+        let mut t = table(&format!("K-{k}"), n);
+        if k != 1 {
+            for i in (n / 3 - 5)..(n / 3 + 20_003) {
+                t.decide(i, Status::Replaced, Some(Fault::ALL[(i / 7) % 7]), 1, 9.0, 5.0);
+                t.value[i] = 0.5;
+            }
+            t.decide(n - 1, Status::Ok, Some(Fault::Drift), 2, 1.0, 0.5);
+        }
+        tables.push(t);
+    }
+    let mut w = CleanedWriter::create(&path, "r", Compression::Zstd).unwrap();
+    for t in &tables {
+        w.write_tag(t).unwrap();
+    }
+    w.close().unwrap();
+    assert_eq!(read_back(&path).1, expected_rows(&tables));
+
+    let meta = page_index(&path);
+    let ix = meta.page_index_for_row_group(0);
+    let rg = meta.row_group(0);
+    assert_eq!(rg.num_rows() as usize, 3 * n);
+    for (c, col) in rg.columns().iter().enumerate() {
+        let pages = &ix.offset_index(c).unwrap_or_else(|| panic!("{}: offset index", col.column_path())).page_locations;
+        assert_eq!(pages[0].first_row_index, 0);
+        assert!(pages.windows(2).all(|p| p[0].first_row_index < p[1].first_row_index));
+    }
+    // Pages of `tag`: 20,000 rows each, min and max the tags they hold.
+    let tag_pages = &ix.offset_index(0).unwrap().page_locations;
+    assert_eq!(tag_pages.len(), (3 * n).div_ceil(20_000));
+    match ix.column_index(0) {
+        Some(parquet::file::page_index::column_index::ColumnIndexMetaData::BYTE_ARRAY(ix)) => {
+            assert_eq!(ix.min_value(0), Some("K-0".as_bytes()));
+            // Rows 20,000-39,999 hold the end of K-0 and the start of K-1.
+            assert_eq!((ix.min_value(1), ix.max_value(1)), (Some("K-0".as_bytes()), Some("K-1".as_bytes())));
+            assert_eq!(ix.max_value(tag_pages.len() - 1), Some("K-2".as_bytes()));
+        }
+        other => panic!("tag column index: {other:?}"),
     }
 }
 
