@@ -330,6 +330,46 @@ print("ok", df.height)
     assert!(String::from_utf8_lossy(&out.stdout).starts_with("ok 240"));
 }
 
+/// A file without a single fault (its `fault` column chunk has no value, so
+/// no dictionary: data pages of definition levels only) and tags longer
+/// than a page read back in pyarrow and polars (PyPI).
+#[test]
+fn a_file_without_faults_reads_back_in_pyarrow_and_polars() {
+    let sb = Sandbox::new();
+    let mut text = String::from("tag,ts,value\n");
+    for tag in ["FT-1.PV", "FT-2.PV"] {
+        for i in 0..25_000i64 {
+            text.push_str(&format!("{tag},{},{}\n", rfc3339(T0_US + i * 1_000_000), 20.0 + (i % 13) as f64));
+        }
+    }
+    let input = sb.write("in.csv", text);
+    let pipeline = sb.write(
+        "p.yaml",
+        "version: 1\nsite: {timezone: UTC}\ninput: {format: long, columns: {tag: tag, time: ts, value: value}}\nrules:\n  - tags: \"*\"\n    steps: [quality]\n",
+    );
+    run(&sb, &pipeline, &input, "out", &[]).assert_code(0);
+    let script = r#"
+import sys
+import pyarrow.parquet as pq, polars as pl
+path = sys.argv[1]
+t = pq.read_table(path)
+assert t.num_rows == 50000 and t.column("fault").null_count == 50000, (t.num_rows, t.column("fault").null_count)
+assert t.column("status").to_pylist() == ["ok"] * 50000
+tags = t.column("tag").to_pylist()
+assert tags == ["FT-1.PV"] * 25000 + ["FT-2.PV"] * 25000
+df = pl.read_parquet(path)
+assert df["fault"].null_count() == 50000 and df["tag"].cast(pl.Utf8).to_list() == tags
+print("ok")
+"#;
+    let py = sb.write("check.py", script);
+    let out = std::process::Command::new(tagwright_tests::python())
+        .arg(&py)
+        .arg(sb.path().join("out/cleaned.parquet"))
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}\n{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
+}
+
 /// The demo through the whole chain: every status and every fault kind
 /// appears, filled and replaced rows carry an estimate and its std, and every
 /// changed or flagged row belongs to exactly one provenance event.

@@ -302,17 +302,30 @@ fn run_survey(input: &InputSet, units: &[Unit], chunk: usize, pool: &rayon::Thre
                 periods.insert(t.clone(), (r.settings.period_us, r.group.as_ref().map(|g| g.id.clone())));
             }
         }
-        let series = input.read_tags(&names).map_err(EngineError::Input)?;
-        let found: Vec<(String, Vec<i64>)> = pool.install(|| {
-            series
-                .par_iter()
-                .map(|s| {
-                    let period = periods.get(&s.tag).and_then(|p| p.0).or_else(|| infer_period_us(&s.ts_us));
-                    (s.tag.clone(), survey::change_times(s, period.unwrap_or(1_000_000)))
-                })
-                .collect()
-        });
-        for (tag, times) in found {
+        // Each thread decodes and surveys its own share of the chunk (tags
+        // in file order, so a share is a contiguous stretch of a tag-ordered
+        // file): this phase reads the whole input once more, and decoding
+        // is most of its cost.
+        let share = names.len().div_ceil(pool.current_num_threads()).max(1);
+        let found: Vec<Vec<(String, Vec<i64>)>> = pool
+            .install(|| {
+                names
+                    .par_chunks(share)
+                    .map(|part| {
+                        let series = input.read_tags(part)?;
+                        Ok(series
+                            .iter()
+                            .map(|s| {
+                                let period =
+                                    periods.get(&s.tag).and_then(|p| p.0).or_else(|| infer_period_us(&s.ts_us));
+                                (s.tag.clone(), survey::change_times(s, period.unwrap_or(1_000_000)))
+                            })
+                            .collect())
+                    })
+                    .collect::<crate::io::Result<_>>()
+            })
+            .map_err(EngineError::Input)?;
+        for (tag, times) in found.into_iter().flatten() {
             let group = periods.get(&tag).and_then(|p| p.1.as_deref());
             out.add(&tag, group, &times);
         }
