@@ -233,19 +233,38 @@ pub fn run(
                     (u, s, st)
                 })
                 .collect();
-            let results: Vec<Vec<TagResult>> =
-                pool.install(|| jobs.into_par_iter().map(|(u, s, st)| run_unit(u, s, st, survey.as_ref())).collect());
+            // This chunk is cleaned on the pool while this thread writes the
+            // results of the one before (so the pool does not wait for the
+            // writing, nor the writing for the pool).
+            // A run held to one thread does one thing at a time.
+            let mut results: Option<Vec<Vec<TagResult>>> = None;
+            let slot = &mut results;
+            let survey = survey.as_ref();
+            let clean = move || {
+                *slot = Some(jobs.into_par_iter().map(|(u, s, st)| run_unit(u, s, st, survey)).collect());
+            };
+            let mut write = || {
+                write_ready(&mut pending, &selected, &mut next, &mut writer, &mut prov, &mut outcome, &mut state_out)
+            };
+            let written = if read_ahead {
+                pool.in_place_scope(|sc| {
+                    sc.spawn(move |_| clean());
+                    write()
+                })
+            } else {
+                let w = write();
+                pool.install(clean);
+                w
+            };
+            written.map_err(EngineError::Output)?;
+            let results = results.ok_or_else(|| EngineError::Threads("a chunk's cleaning did not finish".into()))?;
             for r in results.into_iter().flatten() {
                 pending.insert(r.table.tag.clone(), r);
             }
-            while next < selected.len() {
-                let Some(r) = pending.remove(&selected[next]) else { break };
-                write_result(r, &mut writer, &mut prov, &mut outcome, &mut state_out).map_err(EngineError::Output)?;
-                next += 1;
-            }
             progress(((ci + 1) * chunk).min(total), total);
         }
-        Ok(())
+        write_ready(&mut pending, &selected, &mut next, &mut writer, &mut prov, &mut outcome, &mut state_out)
+            .map_err(EngineError::Output)
     })?;
     // Tags whose results never came (a read returned nothing for them).
     while next < selected.len() {
@@ -406,6 +425,24 @@ fn run_chain(unit: &Unit, works: &mut [TagWork], survey: Option<&Survey>) -> Opt
 
 /// Records a tag's result (summary, provenance, carried state) and hands
 /// its table to the writer.
+/// Writes the pending results that are next in tag order, as far as they go.
+fn write_ready(
+    pending: &mut BTreeMap<String, TagResult>,
+    selected: &[String],
+    next: &mut usize,
+    writer: &mut CleanedWriter,
+    prov: &mut provenance::Body,
+    outcome: &mut RunOutcome,
+    state_out: &mut BTreeMap<String, StepState>,
+) -> Result<(), IoError> {
+    while *next < selected.len() {
+        let Some(r) = pending.remove(&selected[*next]) else { break };
+        write_result(r, writer, prov, outcome, state_out)?;
+        *next += 1;
+    }
+    Ok(())
+}
+
 fn write_result(
     r: TagResult,
     writer: &mut CleanedWriter,
