@@ -5,8 +5,10 @@
 //!
 //! Work flows one way in chunks: the tags to clean are sorted; a chunk of
 //! work units (a tag, or a group) is read, processed in parallel on a rayon
-//! pool, and written in sorted tag order before the next chunk is read, so
-//! memory holds about one chunk whatever the file size (for a tag-ordered
+//! pool, and written in sorted tag order. With more than one thread three
+//! chunks are in flight at once (the next one read on a reader thread, this
+//! one cleaned on the pool, the one before written by this thread), so
+//! memory holds a few chunks whatever the file size (for a tag-ordered
 //! input). The output is the same bytes whatever the thread count: results
 //! are written in tag order and nothing depends on scheduling.
 
