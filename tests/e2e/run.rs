@@ -291,6 +291,15 @@ fn check_lists_what_each_rule_selects() {
     assert!(r.stdout.contains("FT-101.PV") && r.stdout.contains("XX-999"), "{r}");
 }
 
+/// Runs a Python check script (the pinned `.venv`) with `args`; it must
+/// succeed. Returns its standard output.
+fn python_check(sb: &Sandbox, script: &str, args: &[&Path]) -> String {
+    let py = sb.write("check.py", script);
+    let out = std::process::Command::new(tagwright_tests::python()).arg(&py).args(args).output().unwrap();
+    assert!(out.status.success(), "{}\n{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
+    String::from_utf8_lossy(&out.stdout).into_owned()
+}
+
 /// The cleaned file reads back in pyarrow and polars (PyPI, pinned in
 /// tests/python-requirements.txt) with the contract's types.
 #[test]
@@ -320,14 +329,8 @@ assert rej["value"].null_count() == rej.height
 assert set(df["fault"].drop_nulls().unique().to_list()) == {"range", "bad_quality"}
 print("ok", df.height)
 "#;
-    let py = sb.write("check.py", script);
-    let out = std::process::Command::new(tagwright_tests::python())
-        .arg(&py)
-        .arg(sb.path().join("out/cleaned.parquet"))
-        .output()
-        .unwrap();
-    assert!(out.status.success(), "{}\n{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
-    assert!(String::from_utf8_lossy(&out.stdout).starts_with("ok 240"));
+    let stdout = python_check(&sb, script, &[&sb.path().join("out/cleaned.parquet")]);
+    assert!(stdout.starts_with("ok 240"));
 }
 
 /// A file without a single fault (its `fault` column chunk has no value, so
@@ -361,13 +364,7 @@ df = pl.read_parquet(path)
 assert df["fault"].null_count() == 50000 and df["tag"].cast(pl.Utf8).to_list() == tags
 print("ok")
 "#;
-    let py = sb.write("check.py", script);
-    let out = std::process::Command::new(tagwright_tests::python())
-        .arg(&py)
-        .arg(sb.path().join("out/cleaned.parquet"))
-        .output()
-        .unwrap();
-    assert!(out.status.success(), "{}\n{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
+    python_check(&sb, script, &[&sb.path().join("out/cleaned.parquet")]);
 }
 
 /// The demo through the whole chain: every status and every fault kind
@@ -433,12 +430,5 @@ one = pq.read_table(path, filters=[("tag", "==", "FT-3101B.PV")], columns=["tag"
 assert one.num_rows == sum(n for k, n in want.items() if k.startswith("FT-3101B.PV|")), one.num_rows
 print("ok", len(want))
 "#;
-    let py = sb.write("tally.py", script);
-    let out = std::process::Command::new(tagwright_tests::python())
-        .arg(&py)
-        .arg(out.join("run/cleaned.parquet"))
-        .arg(&want)
-        .output()
-        .unwrap();
-    assert!(out.status.success(), "{}\n{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
+    python_check(&sb, script, &[&out.join("run/cleaned.parquet"), &want]);
 }

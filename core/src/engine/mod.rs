@@ -425,8 +425,6 @@ fn run_chain(unit: &Unit, works: &mut [TagWork], survey: Option<&Survey>) -> Opt
     None
 }
 
-/// Records a tag's result (summary, provenance, carried state) and hands
-/// its table to the writer.
 /// Writes the pending results that are next in tag order, as far as they go.
 fn write_ready(
     pending: &mut BTreeMap<String, TagResult>,
@@ -445,6 +443,8 @@ fn write_ready(
     Ok(())
 }
 
+/// Records a tag's result (summary, provenance, carried state) and hands
+/// its table to the writer.
 fn write_result(
     r: TagResult,
     writer: &mut CleanedWriter,
