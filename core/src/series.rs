@@ -277,16 +277,43 @@ impl TagTable {
         if lens.iter().any(|&l| l != n) {
             return Err(format!("tag {}: column lengths differ ({n} times, {lens:?})", self.tag));
         }
-        if let Some(i) = (1..n).find(|&i| self.ts_us[i] <= self.ts_us[i - 1]) {
+        if let Some(i) = first_not_increasing(&self.ts_us) {
             return Err(format!("tag {}: times do not increase at row {i}", self.tag));
         }
-        if let Some(i) =
-            (0..n).find(|&i| (self.status[i] != Status::Ok || self.fault[i].is_some()) && self.decided_by[i] == NO_STEP)
-        {
-            return Err(format!("tag {}: row {i} changed without a deciding step", self.tag));
+        let undecided =
+            |i: usize| (self.status[i] != Status::Ok || self.fault[i].is_some()) && self.decided_by[i] == NO_STEP;
+        // Unchanged rows are the common case: look closer only in a block
+        // that has a changed one.
+        let changed = |lo: usize| {
+            let hi = (lo + CHECK_BLOCK).min(n);
+            let st = self.status[lo..hi].iter().fold(false, |any, &s| any | (s != Status::Ok));
+            st | self.fault[lo..hi].iter().fold(false, |any, f| any | f.is_some())
+        };
+        for lo in (0..n).step_by(CHECK_BLOCK).filter(|&lo| changed(lo)) {
+            if let Some(i) = (lo..(lo + CHECK_BLOCK).min(n)).find(|&i| undecided(i)) {
+                return Err(format!("tag {}: row {i} changed without a deciding step", self.tag));
+            }
         }
         Ok(())
     }
+}
+
+/// Rows per block of the table checks (a block is scanned without early
+/// exit, which the compiler vectorises; the exact row is then looked up).
+const CHECK_BLOCK: usize = 256;
+
+/// The first row whose time is not greater than the one before, if any.
+pub fn first_not_increasing(ts: &[i64]) -> Option<usize> {
+    let mut lo = 0;
+    while lo + 1 < ts.len() {
+        let hi = (lo + CHECK_BLOCK + 1).min(ts.len());
+        let block = &ts[lo..hi];
+        if block.windows(2).fold(false, |bad, w| bad | (w[1] <= w[0])) {
+            return (lo + 1..hi).find(|&i| ts[i] <= ts[i - 1]);
+        }
+        lo = hi - 1;
+    }
+    None
 }
 
 #[cfg(test)]
@@ -308,5 +335,35 @@ mod tests {
         assert_eq!(t.status, [Status::Ok, Status::Ok, Status::Filled, Status::Filled, Status::Ok]);
         assert!(t.raw[2].is_nan() && t.raw[4] == 3.0);
         t.check().unwrap();
+    }
+
+    /// The block-wise checks find the exact row, at every position around
+    /// the block boundaries.
+    #[test]
+    fn checks_name_the_exact_row() {
+        let n = 3 * CHECK_BLOCK + 7;
+        let s = TagSeries {
+            tag: "FT-1".into(),
+            ts_us: (0..n as i64).collect(),
+            values: vec![1.0; n],
+            quality: vec![Quality::Good; n],
+            counts: ReadCounts::default(),
+        };
+        let clean = TagTable::from_series(&s, 1, Sampling::Regular);
+        assert_eq!(first_not_increasing(&clean.ts_us), None);
+        clean.check().unwrap();
+        for bad in [1, CHECK_BLOCK - 1, CHECK_BLOCK, CHECK_BLOCK + 1, 2 * CHECK_BLOCK, n - 1] {
+            let mut t = clean.clone();
+            t.ts_us[bad] = t.ts_us[bad - 1];
+            assert_eq!(first_not_increasing(&t.ts_us), Some(bad));
+            assert!(t.check().unwrap_err().contains(&format!("do not increase at row {bad}")));
+            let mut t = clean.clone();
+            t.status[bad] = Status::Rejected;
+            assert!(t.check().unwrap_err().contains(&format!("row {bad} changed without a deciding step")));
+            t.decided_by[bad] = 0;
+            t.check().unwrap();
+            t.fault[bad - 1] = Some(Fault::Spike);
+            assert!(t.check().unwrap_err().contains(&format!("row {} changed", bad - 1)));
+        }
     }
 }

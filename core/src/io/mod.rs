@@ -221,6 +221,19 @@ pub fn read_tag(path: &Path, tag: &str, columns: &ColumnMap) -> Result<TagSample
 /// ignoring spacings that are not positive. `None` when there is no positive
 /// spacing (fewer than two distinct times).
 pub fn infer_period_us(ts: &[i64]) -> Option<i64> {
+    // Fast path for the usual regular tag: when more than half of the
+    // positive spacings equal the first one, that spacing is the median
+    // (a run longer than half a sorted list covers its middle).
+    let first = ts.windows(2).map(|w| w[1].saturating_sub(w[0])).find(|&d| d > 0)?;
+    let (mut positive, mut same) = (0usize, 0usize);
+    for w in ts.windows(2) {
+        let d = w[1].saturating_sub(w[0]);
+        positive += usize::from(d > 0);
+        same += usize::from(d == first);
+    }
+    if 2 * same > positive {
+        return Some(first);
+    }
     let mut d: Vec<i64> = ts.windows(2).map(|w| w[1].saturating_sub(w[0])).filter(|&d| d > 0).collect();
     if d.is_empty() {
         return None;

@@ -219,7 +219,7 @@ impl CleanedWriter {
                 )));
             }
         }
-        if let Some(i) = (1..n).find(|&i| t.ts_us[i] <= t.ts_us[i - 1]) {
+        if let Some(i) = crate::series::first_not_increasing(&t.ts_us) {
             return Err(bad(format!("times do not increase at row {i}")));
         }
         self.last_tag = Some(t.tag.clone());

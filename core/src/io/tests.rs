@@ -258,6 +258,22 @@ fn damaged_parquet_never_panics() {
 proptest! {
     #![proptest_config(ProptestConfig::with_cases(32))]
 
+    /// The regular-tag fast path gives the lower median of the positive
+    /// spacings, as sorting them does (spacings drawn mostly from one value,
+    /// so both branches are taken).
+    #[test]
+    fn period_fast_path_is_the_median(steps in prop::collection::vec(prop_oneof![4 => Just(5i64), 1 => -3i64..20], 0..40)) {
+        let mut ts = vec![0i64];
+        for s in &steps {
+            ts.push(ts[ts.len() - 1] + s);
+        }
+        ts.sort();
+        let mut d: Vec<i64> = ts.windows(2).map(|w| w[1] - w[0]).filter(|&d| d > 0).collect();
+        d.sort();
+        let want = (!d.is_empty()).then(|| d[(d.len() - 1) / 2]);
+        prop_assert_eq!(infer_period_us(&ts), want);
+    }
+
     /// A Parquet round trip returns the tag's samples, sorted.
     #[test]
     fn parquet_round_trip(rows in prop::collection::btree_map(-1_000_000_000i64..1_000_000_000, (0usize..3, -1e6f64..1e6), 1..60)) {
