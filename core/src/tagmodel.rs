@@ -386,6 +386,26 @@ impl Fitted {
             .map_err(|e| ModelError(e.to_string()))
     }
 
+    /// The smoothed signal and its standard deviation at every grid point
+    /// ([`Fitted::smooth`]'s `mean` and `sd`), taken from this thread's last
+    /// smoother pass with deletion residuals when that pass had exactly this
+    /// model and these observations (bit for bit: readings, variance
+    /// multipliers and time steps), else computed. A step that runs after the
+    /// fault tests on a tag they left unchanged (the usual case) then skips
+    /// a smoother pass; the result is the same either way.
+    pub fn smooth_signal(&self, obs: &TagObs) -> Result<(Vec<f64>, Vec<f64>), ModelError> {
+        let hit = SIGNAL_MEMO.with(|memo| {
+            let mut memo = memo.borrow_mut();
+            memo.matches(self, obs).then(|| (std::mem::take(&mut memo.mean), std::mem::take(&mut memo.sd)))
+        });
+        if let Some(found) = hit {
+            SIGNAL_MEMO.with(|memo| memo.borrow_mut().clear());
+            return Ok(found);
+        }
+        let sm = self.smooth(obs, false)?;
+        Ok((sm.mean, sm.sd))
+    }
+
     /// Smoothed process value (the signal Z a_t + d, without observation
     /// noise) and its standard deviation at every grid point.
     pub fn smooth(&self, obs: &TagObs, keep_aux: bool) -> Result<Smoothed, ModelError> {
@@ -441,7 +461,10 @@ impl Fitted {
             let n = obs.len();
             let (mut mean, mut sd) = (Vec::new(), Vec::new());
             let outlier = match y_all {
-                Some(y_all) => self.deletion_residuals(obs, filt, &sm, y_all),
+                Some(y_all) => {
+                    SIGNAL_MEMO.with(|memo| memo.borrow_mut().keep(self, &o, &sm));
+                    self.deletion_residuals(obs, filt, &sm, y_all)
+                }
                 None => {
                     mean.reserve_exact(n);
                     sd.reserve_exact(n);
@@ -494,6 +517,73 @@ impl Fitted {
             }
         }
         out
+    }
+}
+
+thread_local! {
+    /// The signal of this thread's last smoother pass with deletion
+    /// residuals, for [`Fitted::smooth_signal`].
+    static SIGNAL_MEMO: std::cell::RefCell<SignalMemo> = Default::default();
+}
+
+/// A smoothed signal with everything that determines it: the model (spec
+/// and parameters) and the observations, all compared bit for bit.
+#[derive(Default)]
+struct SignalMemo {
+    spec: String,
+    params: Vec<u64>,
+    y: Vec<u64>,
+    w: Vec<u64>,
+    dt: Vec<u64>,
+    mean: Vec<f64>,
+    sd: Vec<f64>,
+}
+
+fn bits(x: &[f64]) -> impl Iterator<Item = u64> + '_ {
+    x.iter().map(|v| v.to_bits())
+}
+
+impl SignalMemo {
+    fn clear(&mut self) {
+        for v in [&mut self.params, &mut self.y, &mut self.w, &mut self.dt] {
+            v.clear();
+        }
+        self.spec.clear();
+        self.mean.clear();
+        self.sd.clear();
+    }
+
+    /// Keeps the signal of a pass on `o` (a univariate grid with its time
+    /// steps and variance multipliers, as [`TagObs::observations`] gives).
+    fn keep(&mut self, f: &Fitted, o: &Observations, sm: &SmootherOutput) {
+        self.clear();
+        let (Some(dt), Some(w)) = (o.dt, o.h_scale) else { return };
+        if o.p != 1 {
+            return;
+        }
+        let (z, d) = f.signal_row();
+        let m = z.len();
+        let n = o.len();
+        if sm.state.len() < n * m || sm.cov.len() < n * m * m {
+            return;
+        }
+        self.spec = f.spec.to_string();
+        self.params.extend(bits(&f.params));
+        self.y.extend(bits(o.y));
+        self.w.extend(bits(w));
+        self.dt.extend(bits(dt));
+        self.mean.extend((0..n).map(|t| ssm::signal_of(&z, d, &sm.state[t * m..(t + 1) * m])));
+        self.sd.extend((0..n).map(|t| ssm::signal_var_of(&z, &sm.cov[t * m * m..(t + 1) * m * m]).sqrt()));
+    }
+
+    fn matches(&self, f: &Fitted, obs: &TagObs) -> bool {
+        !self.mean.is_empty()
+            && self.mean.len() == obs.len()
+            && self.params.iter().copied().eq(bits(&f.params))
+            && self.y.iter().copied().eq(bits(&obs.y))
+            && self.w.iter().copied().eq(bits(&obs.w))
+            && self.dt.iter().copied().eq(bits(&obs.dt))
+            && self.spec == f.spec.to_string()
     }
 }
 
@@ -621,5 +711,69 @@ mod tests {
         assert_eq!(g.params, f.params);
         let s = g.smooth(&o, false).unwrap();
         assert!(s.sd.iter().all(|&x| x > 0.0 && x < 0.3));
+    }
+
+    /// The signal a later step takes from the fault tests' smoother pass is
+    /// bit for bit the one it would compute; any difference in model or
+    /// observations computes it afresh.
+    #[test]
+    fn the_remembered_signal_is_the_computed_one() {
+        let mut rng = crate::rng::Rng::new(5);
+        let mut x = 0.0;
+        let mut v: Vec<f64> = (0..600)
+            .map(|_| {
+                x = 0.98 * x + 0.2 * rng.normal();
+                50.0 + x + 0.1 * rng.normal()
+            })
+            .collect();
+        v[100] = f64::NAN;
+        v[300] += 5.0;
+        let mut ts: Vec<i64> = (0..600).map(|i| i * 10).collect();
+        ts.drain(400..420); // a gap
+        v.drain(400..420);
+        let t = table(ts, v, Sampling::Regular);
+        let mut o = TagObs::build(&t, 4.0, |i| i != 7, 0);
+        let spec: ModelSpec = "local-level+arma(1,0)".parse().unwrap();
+        let given = [("sigma2.obs", 0.01), ("sigma2.level", 1e-6), ("phi.1", 0.98), ("sigma2.arma", 0.04)];
+        let f = Fitted::given(&spec, &given.iter().map(|(k, v)| (k.to_string(), *v)).collect()).unwrap();
+        o.set_noise(f.obs_noise());
+        let fresh = f.smooth(&o, false).unwrap();
+        let same = |(m, s): (Vec<f64>, Vec<f64>)| {
+            m.iter().map(|x| x.to_bits()).eq(fresh.mean.iter().map(|x| x.to_bits()))
+                && s.iter().map(|x| x.to_bits()).eq(fresh.sd.iter().map(|x| x.to_bits()))
+        };
+        let remembered = || SIGNAL_MEMO.with(|m| !m.borrow().mean.is_empty());
+
+        // The same observations: taken from the memo (which is then spent).
+        f.smooth_with_outliers(&o, &o.y).unwrap();
+        assert!(remembered());
+        assert!(same(f.smooth_signal(&o).unwrap()));
+        assert!(!remembered());
+        // Spent: computed again, same result.
+        assert!(same(f.smooth_signal(&o).unwrap()));
+
+        // One reading left out of the tests' pass: not taken.
+        let mut y = o.y.clone();
+        y[300] = f64::NAN;
+        f.smooth_with_outliers_of(&o, &y, &o.y).unwrap();
+        assert!(same(f.smooth_signal(&o).unwrap()));
+        assert!(remembered(), "a different pass is not taken");
+        // Another parameter value or another variance multiplier: not taken.
+        let mut g = f.clone();
+        g.params[0] *= 1.0 + 1e-15;
+        g.smooth_with_outliers(&o, &o.y).unwrap();
+        assert!(same(f.smooth_signal(&o).unwrap()) && remembered());
+        f.smooth_with_outliers(&o, &o.y).unwrap();
+        let mut o2 = o.clone();
+        o2.w[5] *= 2.0;
+        assert!(!f
+            .smooth_signal(&o2)
+            .unwrap()
+            .0
+            .iter()
+            .map(|x| x.to_bits())
+            .eq(fresh.mean.iter().map(|x| x.to_bits())));
+        assert!(remembered());
+        assert!(same(f.smooth_signal(&o).unwrap()) && !remembered());
     }
 }

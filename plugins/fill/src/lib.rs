@@ -158,7 +158,7 @@ impl FillStep {
             }
         };
         obs.set_noise(fitted.obs_noise());
-        let sm = fitted.smooth(&obs, false).map_err(|e| e.to_string())?;
+        let (mean, sd) = fitted.smooth_signal(&obs).map_err(|e| e.to_string())?;
 
         // 3. Lengths of the runs without an observation (gaps and rejected runs).
         let mut hole_len = vec![0i64; n];
@@ -192,7 +192,7 @@ impl FillStep {
         let (mut filled, mut replaced, mut null_rows) = (0usize, 0usize, 0usize);
         for k in 0..obs.len() {
             let Some(i) = obs.row[k] else { continue };
-            let (mean, sd) = (sm.mean[k], sm.sd[k]);
+            let (mean, sd) = (mean[k], sd[k]);
             t.std[i] = sd;
             let short = hole_len[i] <= self.max_gap_us;
             match t.status[i] {
