@@ -146,12 +146,13 @@ pub fn find(
     let mut fault_at: Vec<Option<Fault>> = vec![None; n];
 
     // 1. Stuck: runs of identical readings on a regularly sampled tag.
-    let mut clean = obs.clone();
+    // (A copy only when a stuck run leaves readings out.)
+    let mut clean = std::borrow::Cow::Borrowed(obs);
     if table.sampling == Sampling::Regular {
         for d in stuck_runs(obs, table, cfg, f_lower_bound(&f.model)) {
             if let Some(&k) = k_of_row.get(d.row).filter(|&&k| k != usize::MAX) {
                 fault_at[k] = Some(Fault::Stuck);
-                clean.drop_point(k);
+                clean.to_mut().drop_point(k);
                 out.exclude.push(k);
             }
             out.decisions.push(d);

@@ -248,7 +248,7 @@ impl FaultsStep {
                 .push(format!("faults: only {n_usable} usable readings; no model fitted and no fault test run"));
             return Ok(());
         }
-        let base = TagObs::build(table, work.settings.uncertain_factor, |i| usable[i], 0);
+        let mut base = TagObs::build(table, work.settings.uncertain_factor, |i| usable[i], 0);
         let cfg = detect::Config::new(&self.params, table.period_us, self, base.observed());
         let mut excluded = vec![false; base.len()];
         let mut fitted: Option<Fitted> = None;
@@ -280,7 +280,8 @@ impl FaultsStep {
             };
             // Detection runs on all usable readings (the excluded ones are
             // judged again, against the refitted model).
-            let mut all = base.clone();
+            // (The last round may take `base` itself.)
+            let mut all = if round + 1 == rounds { std::mem::take(&mut base) } else { base.clone() };
             all.set_noise(f.obs_noise());
             findings = detect::find(&f, &all, table, &cfg, ctx.survey, &tag).map_err(|e| self.fail(&tag, e))?;
             fitted = Some(f);
