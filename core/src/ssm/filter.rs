@@ -439,7 +439,14 @@ where
     let mut t = 0;
     while t < n {
         if two_states && !diffuse && !steady {
-            let (tn, converged) = run_two_states(
+            // A sum of two one-state blocks (z = [1, 1]; T diagonal, which
+            // the loop checks at each step) runs a copy with those entries
+            // known: the same arithmetic, since x * 1 = x and the products
+            // with the zeros drop out, on a shorter chain of dependent
+            // operations.
+            let unit_z = zrows[0].iter().all(|&z| z == 1.0);
+            let run = if unit_z { run_two_states::<true> } else { run_two_states::<false> };
+            let (tn, converged) = run(
                 model,
                 obs,
                 opts,
@@ -724,7 +731,7 @@ struct TwoStateRefs<'a> {
 /// general loop adds copies and checks to it). Runs from `t` until the end
 /// or until the predicted covariance has converged (the general loop's
 /// test); returns the next time index and whether it converged.
-fn run_two_states(
+fn run_two_states<const UNIT_Z: bool>(
     model: &StateSpace,
     obs: &Observations,
     opts: &FilterOptions,
@@ -771,10 +778,14 @@ fn run_two_states(
                 plain = false;
             }
             let h = h0 * w;
-            let v = y - (z0 * a0 + z1 * a1) - d0;
-            let k0 = p00 * z0 + p01 * z1;
-            let k1 = p01 * z0 + p11 * z1;
-            let f = z0 * k0 + z1 * k1 + h;
+            let (v, k0, k1, f) = if UNIT_Z {
+                let (k0, k1) = (p00 + p01, p01 + p11);
+                (y - (a0 + a1) - d0, k0, k1, k0 + k1 + h)
+            } else {
+                let k0 = p00 * z0 + p01 * z1;
+                let k1 = p01 * z0 + p11 * z1;
+                (y - (z0 * a0 + z1 * a1) - d0, k0, k1, z0 * k0 + z1 * k1 + h)
+            };
             if f.is_nan() || f <= 1e-13 * (h + 0f64.max(p00).max(p11)).max(f64::MIN_POSITIVE) {
                 if store {
                     out.v[t] = v;
@@ -815,9 +826,14 @@ fn run_two_states(
             *cur_dt = dt;
             plain = false;
         }
-        (a0, a1) = (t00 * a0 + t01 * a1 + c0, t10 * a0 + t11 * a1 + c1);
         // T P T' + RQR' on the symmetric P.
-        let [s00, s01, s11] = congruence2([t00, t01, t10, t11], [p00, p01, p11]);
+        let [s00, s01, s11] = if UNIT_Z && t01 == 0.0 && t10 == 0.0 {
+            (a0, a1) = (t00 * a0 + c0, t11 * a1 + c1);
+            [(t00 * p00) * t00, (t00 * p01) * t11, (t11 * p11) * t11]
+        } else {
+            (a0, a1) = (t00 * a0 + t01 * a1 + c0, t10 * a0 + t11 * a1 + c1);
+            congruence2([t00, t01, t10, t11], [p00, p01, p11])
+        };
         p00 = clear_negative(s00 + q00);
         p01 = s01 + q01;
         p11 = clear_negative(s11 + q11);
