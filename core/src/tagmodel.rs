@@ -396,10 +396,13 @@ impl Fitted {
     pub fn smooth_signal(&self, obs: &TagObs) -> Result<(Vec<f64>, Vec<f64>), ModelError> {
         let hit = SIGNAL_MEMO.with(|memo| {
             let mut memo = memo.borrow_mut();
-            memo.matches(self, obs).then(|| (std::mem::take(&mut memo.mean), std::mem::take(&mut memo.sd)))
+            let found = memo.matches(self, obs).then(|| (std::mem::take(&mut memo.mean), std::mem::take(&mut memo.sd)));
+            if found.is_some() {
+                memo.clear();
+            }
+            found
         });
         if let Some(found) = hit {
-            SIGNAL_MEMO.with(|memo| memo.borrow_mut().clear());
             return Ok(found);
         }
         let sm = self.smooth(obs, false)?;
@@ -466,19 +469,25 @@ impl Fitted {
                     self.deletion_residuals(obs, filt, &sm, y_all)
                 }
                 None => {
-                    mean.reserve_exact(n);
-                    sd.reserve_exact(n);
-                    let (z, d) = self.signal_row();
-                    let m = z.len();
-                    for t in 0..n {
-                        mean.push(ssm::signal_of(&z, d, &sm.state[t * m..(t + 1) * m]));
-                        sd.push(ssm::signal_var_of(&z, &sm.cov[t * m * m..(t + 1) * m * m]).sqrt());
-                    }
+                    self.signal_into(&sm, n, &mut mean, &mut sd);
                     Vec::new()
                 }
             };
             Ok(Smoothed { mean, sd, smoother: sm, diffuse_end: filt.diffuse_end, outlier })
         })
+    }
+
+    /// Appends the smoothed signal z a_t + d and its standard deviation at
+    /// the first `n` grid points of `sm`.
+    fn signal_into(&self, sm: &SmootherOutput, n: usize, mean: &mut Vec<f64>, sd: &mut Vec<f64>) {
+        let (z, d) = self.signal_row();
+        let m = z.len();
+        mean.reserve_exact(n);
+        sd.reserve_exact(n);
+        for t in 0..n {
+            mean.push(ssm::signal_of(&z, d, &sm.state[t * m..(t + 1) * m]));
+            sd.push(ssm::signal_var_of(&z, &sm.cov[t * m * m..(t + 1) * m * m]).sqrt());
+        }
     }
 
     /// The first row of Z and d: the signal is z a + d.
@@ -561,9 +570,7 @@ impl SignalMemo {
         if o.p != 1 {
             return;
         }
-        let (z, d) = f.signal_row();
-        let m = z.len();
-        let n = o.len();
+        let (m, n) = (f.model.state_dim(), o.len());
         if sm.state.len() < n * m || sm.cov.len() < n * m * m {
             return;
         }
@@ -572,8 +579,7 @@ impl SignalMemo {
         self.y.extend(bits(o.y));
         self.w.extend(bits(w));
         self.dt.extend(bits(dt));
-        self.mean.extend((0..n).map(|t| ssm::signal_of(&z, d, &sm.state[t * m..(t + 1) * m])));
-        self.sd.extend((0..n).map(|t| ssm::signal_var_of(&z, &sm.cov[t * m * m..(t + 1) * m * m]).sqrt()));
+        f.signal_into(sm, n, &mut self.mean, &mut self.sd);
     }
 
     fn matches(&self, f: &Fitted, obs: &TagObs) -> bool {
