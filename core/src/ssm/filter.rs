@@ -380,6 +380,47 @@ fn run<D: Dim>(dim: D, model: &StateSpace, obs: &Observations, opts: &FilterOpti
 where
     DefaultAllocator: Allocator<D, D> + Allocator<D>,
 {
+    run_until(dim, model, obs, opts, path, out, None);
+}
+
+/// Where a two-state filter stands when its ordinary recursion begins
+/// (after the diffuse phase): what [`super::lanes`] needs to go on.
+pub(crate) struct Handoff {
+    /// Next time index.
+    pub t: usize,
+    pub a: [f64; 2],
+    /// Predicted covariance [p00, p01, p11].
+    pub p: [f64; 3],
+    /// The system of the step from t - 1 (T and RQR' for `cur_dt`).
+    pub sys: super::model::StepSystem,
+    pub cur_dt: f64,
+    /// log F of the regular updates so far.
+    pub logs: LogSum,
+}
+
+/// Runs a two-state, one-element model (likelihood only) up to the start of
+/// its ordinary recursion and returns the filter's state there, with the
+/// sums so far in `out`; `None` when the run ended first (`out` then holds
+/// the whole run).
+pub(crate) fn two_state_handoff(model: &StateSpace, obs: &Observations, out: &mut FilterOutput) -> Option<Handoff> {
+    assert!(model.state_dim() == 2 && obs.p == 1, "two_state_handoff needs m = 2, p = 1");
+    let mut h = None;
+    let opts = FilterOptions { path: Path::Fixed, ..FilterOptions::loglik_only() };
+    run_until(Const::<2>, model, obs, &opts, Path::Fixed, out, Some(&mut h));
+    h
+}
+
+fn run_until<D: Dim>(
+    dim: D,
+    model: &StateSpace,
+    obs: &Observations,
+    opts: &FilterOptions,
+    path: Path,
+    out: &mut FilterOutput,
+    mut handoff: Option<&mut Option<Handoff>>,
+) where
+    DefaultAllocator: Allocator<D, D> + Allocator<D>,
+{
     let m = model.state_dim();
     let p = obs.p;
     let n = obs.len();
@@ -439,6 +480,11 @@ where
     let mut t = 0;
     while t < n {
         if two_states && !diffuse && !steady {
+            if let Some(h) = handoff.take() {
+                let ps = ps.as_slice();
+                *h = Some(Handoff { t, a: [a[0], a[1]], p: [ps[0], 0.5 * (ps[1] + ps[2]), ps[3]], sys, cur_dt, logs });
+                return;
+            }
             // A sum of two one-state blocks (z = [1, 1]; T diagonal, which
             // the loop checks at each step) runs a copy with those entries
             // known: the same arithmetic, since x * 1 = x and the products

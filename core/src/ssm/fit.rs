@@ -1,7 +1,12 @@
 //! Maximum-likelihood estimation from the prediction-error decomposition.
 //!
-//! The optimiser (argmin's BFGS with a backtracking (Armijo) line search, gradients by
-//! central differences) sees only unconstrained parameters u:
+//! The optimiser is a trust-region Newton method with a finite-difference
+//! Hessian (`newton`), run from every starting point side by side, so that
+//! each round's likelihood evaluations go to the filter together (for a
+//! two-state model they run in lock-step, `lanes`). A run that stops short
+//! (iterations out, a failed evaluation) is handed to argmin's BFGS with a
+//! backtracking (Armijo) line search, gradients by central differences. The
+//! optimisers see only unconstrained parameters u:
 //!
 //! - a variance is exp(u) (log-variance);
 //! - an AR block is the image of u under the partial-autocorrelation map
@@ -16,8 +21,12 @@
 //!
 //! Convergence is judged at the final point by the size of the gradient of
 //! the log-likelihood per observation (max |g| <= `FitOptions::grad_tol`),
-//! whatever the reason the optimiser stopped. If BFGS fails or stops short,
-//! a Nelder-Mead search restarts it once. Standard errors come from a
+//! whatever the reason the optimiser stopped. A Newton run also ends when an
+//! iteration gains less than 1e-5 in the log-likelihood and the next is
+//! predicted to gain no more (a variance ratio running towards 0 or
+//! infinity, where the likelihood approaches its bound slowly), or when it
+//! cannot catch up with another start's run (see `newton::Ending`). If BFGS
+//! fails or stops short, a Nelder-Mead search restarts it once. Standard errors come from a
 //! central-difference Hessian of the full (not concentrated) log-likelihood
 //! in the model's own parameters; they are `None` where the Hessian is not
 //! negative definite (for example a variance estimated at zero).
@@ -187,10 +196,21 @@ struct Problem<'a> {
     evals: std::cell::Cell<u64>,
     /// Reused filter output (the data were validated once, up front).
     out: std::cell::RefCell<FilterOutput>,
+    /// Evaluate through `lanes` (two states, one element, path not forced).
+    lanes: bool,
 }
 
 impl Problem<'_> {
     fn value(&self, u: &[f64]) -> f64 {
+        if self.lanes {
+            let mut out = Vec::with_capacity(1);
+            super::newton::Batch::values(self, &[u.to_vec()], &mut out);
+            return out[0];
+        }
+        self.value_alone(u)
+    }
+
+    fn value_alone(&self, u: &[f64]) -> f64 {
         self.evals.set(self.evals.get() + 1);
         let mut params = vec![0.0; self.tr.kinds.len()];
         self.tr.constrain(u, &mut params);
@@ -220,6 +240,43 @@ impl Problem<'_> {
             g[i] = (fp - fm) / (2.0 * h);
         }
         g
+    }
+}
+
+impl super::newton::Batch for Problem<'_> {
+    /// Values at several points: a two-state model (the common case: level
+    /// plus AR(1), local trend, ARMA(2,0) or (1,1)) runs its filters in
+    /// lock-step (see `lanes`); others one after the other.
+    fn values(&self, points: &[Vec<f64>], out: &mut Vec<f64>) {
+        out.clear();
+        if !self.lanes {
+            out.extend(points.iter().map(|u| self.value_alone(u)));
+            return;
+        }
+        self.evals.set(self.evals.get() + points.len() as u64);
+        let mut params = vec![0.0; self.tr.kinds.len()];
+        let mut models = Vec::with_capacity(points.len());
+        let mut built = Vec::with_capacity(points.len());
+        for u in points {
+            self.tr.constrain(u, &mut params);
+            match self.spec.build(&params) {
+                Ok(m) => {
+                    built.push(true);
+                    models.push(m);
+                }
+                Err(_) => built.push(false),
+            }
+        }
+        let mut lls = Vec::with_capacity(models.len());
+        super::lanes::concentrated_logliks(&models, self.obs, &mut self.out.borrow_mut(), &mut lls);
+        let mut lls = lls.into_iter();
+        for ok in built {
+            let v = if ok { lls.next() } else { None };
+            out.push(match v {
+                Some((ll, nobs)) if nobs > 0 && ll.is_finite() => -ll / self.nobs,
+                _ => 1e100,
+            });
+        }
     }
 }
 
@@ -287,13 +344,41 @@ impl Gradient for ProblemRef<'_, '_> {
     }
 }
 
+/// Trust-region Newton from every start, side by side; a run that stops
+/// short goes on with [`rescue`]. Returns the best point and the iterations.
+fn optimise(problem: &Problem, starts: Vec<Vec<f64>>, opts: &FitOptions) -> (Vec<f64>, u64) {
+    // Flat: iterations gaining less than 1e-5 in the log-likelihood.
+    let f_tol = 1e-5 / problem.nobs;
+    let runs = super::newton::minimise(problem, starts, opts.max_iter, opts.grad_tol * 0.1, f_tol);
+    let mut best: Option<(f64, Vec<f64>)> = None;
+    let mut iters = 0;
+    for run in runs {
+        iters += run.iterations;
+        let (x, f) = if run.ending == super::newton::Ending::Stopped {
+            let (x, it) = rescue(problem, run.x, opts);
+            iters += it;
+            let f = problem.value(&x);
+            (x, f)
+        } else {
+            (run.x, run.f)
+        };
+        if best.as_ref().is_none_or(|b| f < b.0) {
+            best = Some((f, x));
+        }
+    }
+    let u = best.map(|b| b.1).unwrap_or_default();
+    (u, iters)
+}
+
 /// BFGS from x0, and if that fails or stops with a large gradient, a
 /// Nelder-Mead search followed by BFGS again; returns the better point.
-fn optimise(problem: &Problem, x0: Vec<f64>, opts: &FitOptions) -> (Vec<f64>, u64) {
+fn rescue(problem: &Problem, x0: Vec<f64>, opts: &FitOptions) -> (Vec<f64>, u64) {
     let mut u = x0.clone();
     let mut iters = 0;
     if let Some((x, it)) = run_bfgs(problem, x0, opts.max_iter, opts.grad_tol) {
-        u = x;
+        if problem.value(&x) <= problem.value(&u) {
+            u = x;
+        }
         iters += it;
     }
     if max_abs(&problem.grad(&u)) > opts.grad_tol {
@@ -352,6 +437,7 @@ pub fn fit(spec: &ModelSpec, obs: &Observations, opts: &FitOptions) -> Result<Fi
         nobs: summary.n_obs as f64,
         evals: std::cell::Cell::new(0),
         out: Default::default(),
+        lanes: obs.p == 1 && matches!(opts.path, Path::Auto | Path::Fixed) && spec.state_dim() == 2,
     };
 
     // Start: given values, or the best of a few variance ratios with AR/MA at zero.
@@ -370,9 +456,8 @@ pub fn fit(spec: &ModelSpec, obs: &Observations, opts: &FitOptions) -> Result<Fi
             let ratio_grid: &[f64] = if n_var > 1 { &[-6.9, -4.6, -2.3, 0.0, 2.3] } else { &[0.0] };
             let first_ar = tr.ar.map(|(s, _)| if s > tr.scale { s - 1 } else { s });
             let ar_grid: &[f64] = if n_var > 1 && first_ar.is_some() { &[0.0, 1.0, 3.0] } else { &[0.0] };
-            let mut picks = Vec::new();
+            let mut grid = Vec::new();
             for &ar0 in ar_grid {
-                let mut best = (f64::INFINITY, Vec::new());
                 for &log_ratio in ratio_grid {
                     let mut u: Vec<f64> = (0..tr.kinds.len())
                         .filter(|&i| i != tr.scale)
@@ -381,31 +466,22 @@ pub fn fit(spec: &ModelSpec, obs: &Observations, opts: &FitOptions) -> Result<Fi
                     if let Some(j) = first_ar {
                         u[j] = ar0;
                     }
-                    let f = problem.value(&u);
-                    if f < best.0 || best.1.is_empty() {
-                        best = (f, u);
-                    }
+                    grid.push(u);
                 }
-                picks.push(best.1);
+            }
+            let mut values = Vec::new();
+            super::newton::Batch::values(&problem, &grid, &mut values);
+            // The best start of each AR value (the first on ties).
+            let mut picks = Vec::new();
+            for (row, vals) in grid.chunks(ratio_grid.len()).zip(values.chunks(ratio_grid.len())) {
+                let best = (0..row.len()).fold(0, |b, i| if vals[i] < vals[b] { i } else { b });
+                picks.push(row[best].clone());
             }
             picks
         }
     };
 
-    let mut u = starts[0].clone();
-    let mut iterations = 0;
-    if !u.is_empty() {
-        let mut best_f = f64::INFINITY;
-        for x0 in starts {
-            let (x, it) = optimise(&problem, x0, opts);
-            iterations += it;
-            let f = problem.value(&x);
-            if f < best_f {
-                best_f = f;
-                u = x;
-            }
-        }
-    }
+    let (mut u, iterations) = if starts[0].is_empty() { (vec![], 0) } else { optimise(&problem, starts, opts) };
     for x in u.iter_mut() {
         if !x.is_finite() {
             *x = 0.0;
@@ -608,8 +684,10 @@ mod tests {
                 free.loglik,
                 from_truth.loglik
             );
+            // The variances are sigma2.obs, sigma2.level and sigma2.arma (not phi.1).
+            let max_var = [0, 1, 3].iter().map(|&i| free.params[i]).fold(0.0, f64::max);
             for (p, se) in free.params.iter().zip(&free.std_errors) {
-                if *p < 1e-6 * free.params.iter().cloned().fold(0.0, f64::max) {
+                if *p < 1e-6 * max_var {
                     assert!(se.is_none(), "a boundary variance has no standard error");
                 }
             }

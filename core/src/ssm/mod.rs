@@ -24,8 +24,10 @@ pub mod arma;
 mod error;
 pub mod filter;
 pub mod fit;
+pub mod lanes;
 pub mod lyapunov;
 pub mod model;
+mod newton;
 #[cfg(test)]
 mod proptests;
 mod scalar;
