@@ -85,8 +85,8 @@ struct Run {
 }
 
 /// Minimises f from each start in `starts`, the runs side by side: each
-/// round evaluates what every unfinished run needs (a stencil or a trial
-/// point) in one [`Batch::values`] call. A run ends when max |gradient| <=
+/// round evaluates what every unfinished run needs (a stencil, or a trial
+/// point with the stencil around it) in one [`Batch::values`] call. A run ends when max |gradient| <=
 /// `grad_tol`, when f is flat to `f_tol` (see [`Ending::Flat`]), when it
 /// falls behind another run (see [`Ending::Behind`]), or after `max_iter`
 /// iterations.
@@ -132,7 +132,7 @@ pub(crate) fn minimise(
         // A run that cannot catch up with the best value so far stops.
         let best = runs.iter().map(|r| r.fx).fold(f64::INFINITY, f64::min);
         for r in runs.iter_mut() {
-            if matches!(r.phase, Phase::Stencil) && r.iter >= 5 {
+            if !matches!(r.phase, Phase::Done(_)) && r.iter >= 5 {
                 let reach = r.fx - (max_iter - r.iter) as f64 * r.last_gain.max(r.prev_gain);
                 if reach > best {
                     r.phase = Phase::Done(Ending::Behind);
@@ -142,33 +142,37 @@ pub(crate) fn minimise(
         points.clear();
         owner.clear();
         for (i, r) in runs.iter_mut().enumerate() {
-            match &r.phase {
-                Phase::Stencil => {
-                    let k = r.x.len();
-                    r.h = r.x.iter().map(|v| 1e-4 * v.abs().max(1.0)).collect();
-                    for j in 0..k {
-                        for sign in [1.0, -1.0] {
-                            let mut p = r.x.clone();
-                            p[j] += sign * r.h[j];
-                            points.push(p);
-                            owner.push(i);
-                        }
-                    }
-                    for a in 0..k {
-                        for b in 0..a {
-                            let mut p = r.x.clone();
-                            p[a] += r.h[a];
-                            p[b] += r.h[b];
-                            points.push(p);
-                            owner.push(i);
-                        }
-                    }
-                }
+            let centre: Vec<f64> = match &r.phase {
+                Phase::Stencil => r.x.clone(),
                 Phase::Trial { s, .. } => {
-                    points.push(r.x.iter().zip(s.iter()).map(|(a, b)| a + b).collect());
+                    // The trial point, and (speculatively: most trials are
+                    // taken) the stencil around it, so that a taken step
+                    // needs no round of its own for the next stencil.
+                    let trial: Vec<f64> = r.x.iter().zip(s.iter()).map(|(a, b)| a + b).collect();
+                    points.push(trial.clone());
+                    owner.push(i);
+                    trial
+                }
+                Phase::Done(_) => continue,
+            };
+            let k = centre.len();
+            r.h = centre.iter().map(|v| 1e-4 * v.abs().max(1.0)).collect();
+            for j in 0..k {
+                for sign in [1.0, -1.0] {
+                    let mut p = centre.clone();
+                    p[j] += sign * r.h[j];
+                    points.push(p);
                     owner.push(i);
                 }
-                Phase::Done(_) => {}
+            }
+            for a in 0..k {
+                for b in 0..a {
+                    let mut p = centre.clone();
+                    p[a] += r.h[a];
+                    p[b] += r.h[b];
+                    points.push(p);
+                    owner.push(i);
+                }
             }
         }
         if points.is_empty() {
@@ -182,7 +186,13 @@ pub(crate) fn minimise(
             let r = &mut runs[i];
             match std::mem::replace(&mut r.phase, Phase::Stencil) {
                 Phase::Stencil => r.take_stencil(&vals[from..to], grad_tol, f_tol),
-                Phase::Trial { s, predicted } => r.take_trial(s, predicted, &points[from], vals[from], max_iter, f_tol),
+                Phase::Trial { s, predicted } => {
+                    r.take_trial(s, predicted, &points[from], vals[from], max_iter, f_tol);
+                    if matches!(r.phase, Phase::Stencil) {
+                        // Taken: the stencil around the new point is at hand.
+                        r.take_stencil(&vals[from + 1..to], grad_tol, f_tol);
+                    }
+                }
                 Phase::Done(e) => r.phase = Phase::Done(e),
             }
             from = to;
