@@ -10,11 +10,15 @@
 //!
 //! Each model runs the ordinary filter (`filter::run_until`) through its
 //! diffuse phase, then the lock-step loop takes over with the same update
-//! and prediction formulas as the two-state loop of `filter`. Two
-//! differences, both at rounding level: the steady-state shortcut is not
-//! taken (the loop always updates the covariance), and log F is summed in
-//! products of at most 8 terms. `tests::matches_the_filter` checks the
-//! results against the filter.
+//! and prediction formulas as the two-state loop of `filter`, with these
+//! differences, all at rounding level: the products of an update are
+//! grouped differently (K v / F as K (v / F)); log F is taken from a running
+//! product whose binary exponent is moved out every 8 steps; and the
+//! steady-state shortcut starts only when every lane of the pass has
+//! converged, so a lane's result can depend in its last bits on the other
+//! lanes of its pass (the passes are fixed by the data and the optimiser,
+//! so a fit stays reproducible bit for bit). `tests::matches_the_filter`
+//! checks the results against the filter.
 
 use super::filter::{clear_negative, congruence2, two_state_handoff, FilterOptions, FilterOutput, Handoff, LN_2PI};
 use super::model::{Observations, StateSpace, StepSystem};
@@ -196,14 +200,14 @@ fn lockstep<const L: usize>(taken: &mut [(Handoff, Sums, &StateSpace)], obs: &Ob
         // The filter's steady-state test, in every lane at once, on every
         // 8th step (the test costs as much as a tenth of a step).
         let check = t.is_multiple_of(8) && !y.is_nan() && w == 1.0 && dt == 1.0;
-        let before = (st.p00, st.p01, st.p11);
+        let before = if check { Some((st.p00, st.p01, st.p11)) } else { None };
         if sum {
             st.predict::<true>();
         } else {
             st.predict::<false>();
         }
         t += 1;
-        if check && st.converged(&before) {
+        if before.is_some_and(|b| st.converged(&b)) {
             t = st.run_steady(obs, t);
         }
     }
@@ -211,7 +215,7 @@ fn lockstep<const L: usize>(taken: &mut [(Handoff, Sums, &StateSpace)], obs: &Ob
         .map(|l| {
             let (h, sums, _) = &taken[l];
             let log_f = h.logs.total() + st.log_sum[l] + st.log2_sum[l] * std::f64::consts::LN_2 + st.prod[l].ln();
-            let nobs = st.nobs[l];
+            let nobs = st.nobs[l] + st.plain_updates;
             (sums.concentrated(st.v2_f[l], log_f, nobs), sums.nobs + nobs)
         })
         .collect()
@@ -246,6 +250,8 @@ struct State<const L: usize> {
     log_sum: [f64; L],
     /// Factors in `prod` (the same in every lane).
     pending: u32,
+    /// Counted observations: updates in every lane at once, plus each lane's own.
+    plain_updates: usize,
     nobs: [usize; L],
 }
 
@@ -275,6 +281,7 @@ impl<const L: usize> State<L> {
             log2_sum: [0.0; L],
             log_sum: [0.0; L],
             pending: 0,
+            plain_updates: 0,
             nobs: [0; L],
         }
     }
@@ -338,33 +345,21 @@ impl<const L: usize> State<L> {
             // The filter's degenerate test (F = 0 up to rounding), and the
             // range the product of logs can hold.
             let floor = 1e-13 * (h + 0f64.max(self.p00[l]).max(self.p11[l])).max(f64::MIN_POSITIVE);
-            plain &= f[l] > floor && PROD_RANGE.contains(&f[l]);
+            plain &= f[l] > floor.max(*PROD_RANGE.start()) && f[l] <= *PROD_RANGE.end();
         }
         if plain {
             for l in 0..L {
-                let finv = 1.0 / f[l];
-                self.a0[l] += k0[l] * v[l] * finv;
-                self.a1[l] += k1[l] * v[l] * finv;
-                self.p00[l] -= k0[l] * k0[l] * finv;
-                self.p01[l] -= k0[l] * k1[l] * finv;
-                self.p11[l] -= k1[l] * k1[l] * finv;
-                self.v2_f[l] += v[l] * v[l] * finv;
+                self.take(l, k0[l], k1[l], v[l], f[l]);
                 self.prod[l] *= f[l];
-                self.nobs[l] += 1;
             }
+            self.plain_updates += 1;
         } else {
             for l in 0..L {
                 let floor = 1e-13 * (self.h0[l] * w + 0f64.max(self.p00[l]).max(self.p11[l])).max(f64::MIN_POSITIVE);
                 if f[l].is_nan() || f[l] <= floor {
                     continue; // degenerate: no new information
                 }
-                let finv = 1.0 / f[l];
-                self.a0[l] += k0[l] * v[l] * finv;
-                self.a1[l] += k1[l] * v[l] * finv;
-                self.p00[l] -= k0[l] * k0[l] * finv;
-                self.p01[l] -= k0[l] * k1[l] * finv;
-                self.p11[l] -= k1[l] * k1[l] * finv;
-                self.v2_f[l] += v[l] * v[l] * finv;
+                self.take(l, k0[l], k1[l], v[l], f[l]);
                 if PROD_RANGE.contains(&f[l]) {
                     self.prod[l] *= f[l];
                 } else {
@@ -457,6 +452,21 @@ impl<const L: usize> State<L> {
             }
         }
         t
+    }
+
+    /// The regular update of lane l: a += K v / F, P -= K K' / F, and
+    /// v^2 / F into the sum (the products grouped so that each is taken once).
+    #[inline(always)]
+    fn take(&mut self, l: usize, k0: f64, k1: f64, v: f64, f: f64) {
+        let finv = 1.0 / f;
+        let vf = v * finv;
+        let (g0, g1) = (k0 * finv, k1 * finv);
+        self.a0[l] += k0 * vf;
+        self.a1[l] += k1 * vf;
+        self.p00[l] -= g0 * k0;
+        self.p01[l] -= g0 * k1;
+        self.p11[l] -= g1 * k1;
+        self.v2_f[l] += v * vf;
     }
 
     /// a <- T a + c, P <- T P T' + RQR' in every lane.
