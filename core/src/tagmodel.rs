@@ -82,7 +82,21 @@ impl TagObs {
         use_row: impl Fn(usize) -> bool,
         max_quiet_us: i64,
     ) -> TagObs {
+        if table.sampling == Sampling::Regular {
+            return Self::build_regular(table, uncertain_factor, use_row);
+        }
+        Self::build_general(table, uncertain_factor, use_row, max_quiet_us)
+    }
+
+    /// [`TagObs::build`] for any sampling.
+    fn build_general(
+        table: &TagTable,
+        uncertain_factor: f64,
+        use_row: impl Fn(usize) -> bool,
+        max_quiet_us: i64,
+    ) -> TagObs {
         let n = table.len();
+        let period = table.period_us.max(1);
         // One grid point per row at least (an exception-reported tag adds
         // its quiet stretches' points to that).
         let mut o = TagObs {
@@ -94,7 +108,6 @@ impl TagObs {
             ts_us: Vec::with_capacity(n),
             row: Vec::with_capacity(n),
         };
-        let period = table.period_us.max(1);
         let deadband = match table.sampling {
             Sampling::Exception { deadband } => Some(deadband),
             Sampling::Regular => None,
@@ -153,6 +166,47 @@ impl TagObs {
         }
         o.w = o.base_w.clone();
         o
+    }
+
+    /// [`TagObs::build`] for a regularly sampled tag: one grid point per
+    /// row, no pseudo-observation, so each array is filled in one pass of
+    /// its own (the same values the general loop gives).
+    fn build_regular(table: &TagTable, uncertain_factor: f64, use_row: impl Fn(usize) -> bool) -> TagObs {
+        let n = table.len();
+        let period = table.period_us.max(1) as f64;
+        let uncertain = uncertain_factor.max(1.0);
+        let y: Vec<f64> = (0..n)
+            .map(|i| {
+                let usable = table.status[i] != Status::Filled && use_row(i) && table.raw[i].is_finite();
+                if usable {
+                    table.raw[i]
+                } else {
+                    f64::NAN
+                }
+            })
+            .collect();
+        let base_w: Vec<f64> = (0..n)
+            .map(|i| {
+                if table.status[i] != Status::Filled && table.quality[i] == Quality::Uncertain {
+                    uncertain
+                } else {
+                    1.0
+                }
+            })
+            .collect();
+        let mut dt: Vec<f64> = table.ts_us.windows(2).map(|w| ((w[1] - w[0]) as f64 / period).max(1e-6)).collect();
+        if n > 0 {
+            dt.push(1.0);
+        }
+        TagObs {
+            y,
+            dt,
+            w: base_w.clone(),
+            extra_var: vec![0.0; n],
+            base_w,
+            ts_us: table.ts_us.clone(),
+            row: (0..n).map(Some).collect(),
+        }
     }
 
     fn push(&mut self, ts: i64, y: f64, w: f64, extra: f64, row: Option<usize>) {
@@ -677,6 +731,31 @@ mod tests {
         let o = TagObs::build(&t, 4.0, |_| true, 1_000);
         assert_eq!(o.len(), 3);
         assert_eq!(o.dt[1], 4.0);
+    }
+
+    /// The regular tag's one-pass build gives the general loop's arrays:
+    /// missing and unusable readings, uncertain quality, filled rows, gaps.
+    #[test]
+    fn the_regular_build_is_the_general_one() {
+        let ts: Vec<i64> = (0..200).map(|i| if i < 120 { i * 10 } else { i * 10 + 300 }).collect();
+        let v: Vec<f64> = (0..200).map(|i| if i % 17 == 3 { f64::NAN } else { f64::from(i) }).collect();
+        let mut t = table(ts, v, Sampling::Regular);
+        for i in (0..200).step_by(11) {
+            t.quality[i] = Quality::Uncertain;
+        }
+        for i in [5, 6, 150] {
+            t.status[i] = Status::Filled;
+        }
+        let use_row = |i: usize| i % 23 != 7;
+        let fast = TagObs::build(&t, 4.0, use_row, 0);
+        let general = TagObs::build_general(&t, 4.0, use_row, 0);
+        assert_eq!(fast.y.len(), general.y.len());
+        for (a, b) in fast.y.iter().zip(&general.y) {
+            assert_eq!(a.to_bits(), b.to_bits());
+        }
+        assert_eq!((&fast.dt, &fast.w, &fast.base_w), (&general.dt, &general.w, &general.base_w));
+        assert_eq!((&fast.extra_var, &fast.ts_us, &fast.row), (&general.extra_var, &general.ts_us, &general.row));
+        assert!(fast.y[150].is_nan() && fast.base_w[11] == 4.0 && fast.dt[119] == 31.0);
     }
 
     #[test]
