@@ -193,6 +193,37 @@ fn local_linear_trend_matches_statsmodels() {
     check_series("LLT smoothed level at MLE", &level, &nums(&mle["smoothed_level"]), 1e-3);
 }
 
+/// Local level + AR(1) + noise, the default model of flow, pressure,
+/// temperature and level tags, with 5% missing: the likelihood at the true
+/// parameters and the maximum-likelihood fit (Newton from the default
+/// starts, the likelihoods run in lock-step) against statsmodels 0.14.6
+/// `UnobservedComponents(level='llevel', autoregressive=1)` with the level
+/// diffuse and the AR state stationary (tests/reference/llar.json).
+#[test]
+fn level_plus_ar1_matches_statsmodels() {
+    let d = load("llar.json");
+    let y = nums(&d["y"]);
+    assert_eq!(y.iter().filter(|v| v.is_nan()).count(), 100);
+    let obs = Observations::univariate(&y);
+    let spec: ModelSpec = "local-level+arma(1,0)".parse().unwrap();
+    let t = &d["true"];
+    // Our order: sigma2.obs, sigma2.level, phi.1, sigma2.arma.
+    let truth = [num(&t["sigma2_eps"]), num(&t["sigma2_eta"]), num(&t["phi"]), num(&t["sigma2_ar"])];
+    let model = spec.build(&truth).unwrap();
+    for path in [Path::Fixed, Path::General] {
+        let f = filter(&model, &obs, &FilterOptions { path, ..Default::default() }).unwrap();
+        check_rel("level+AR(1) loglik at true params", f.loglik, num(&d["fixed"]["loglik"]), 1e-6);
+    }
+    let res = fit(&spec, &obs, &FitOptions::default()).unwrap();
+    assert!(res.converged, "{res:?}");
+    let mle = &d["mle"];
+    for (i, key) in ["sigma2_eps", "sigma2_eta", "phi", "sigma2_ar"].iter().enumerate() {
+        check_rel(&format!("level+AR(1) MLE {key}"), res.params[i], num(&mle[*key]), 0.01);
+    }
+    // The same optimum or a better one (statsmodels' best of three optimisers).
+    assert!(res.loglik >= num(&mle["loglik"]) - 1e-4, "{} < {}", res.loglik, num(&mle["loglik"]));
+}
+
 #[test]
 fn irregular_local_level_matches_statsmodels_on_the_full_grid() {
     // The reference is statsmodels on the regular grid with NaN at the

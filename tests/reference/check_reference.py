@@ -26,7 +26,8 @@ import sys
 import tempfile
 
 HERE = os.path.dirname(os.path.abspath(__file__))
-FILES = ["nile.json", "arma21.json", "llt.json", "ll_irregular.json", "acvf.json"]
+FILES = ["nile.json", "arma21.json", "llt.json", "ll_irregular.json", "acvf.json",
+         "llar.json"]
 
 EXACT_KEYS = {"y", "times", "missing_idx", "missing_1based", "grid_n", "years",
               "true", "book", "seed", "lags", "params", "fixed_params",

@@ -489,6 +489,83 @@ def make_acvf():
     }
 
 
+# ---------------------------------------------- local level plus AR(1)
+
+LLAR_SEED = 20261205
+LLAR_TRUE = {"sigma2_eps": 0.25, "sigma2_eta": 0.01, "phi": 0.9,
+             "sigma2_ar": 0.5, "level_0": 20.0}
+
+
+def make_llar():
+    """Local level + AR(1) + noise, the default model of flow, pressure,
+    temperature and level tags: a mixed initialisation (the level diffuse,
+    the AR state stationary), as tagwright's model has."""
+    from statsmodels.tsa.statespace.initialization import Initialization
+
+    rng = np.random.default_rng(LLAR_SEED)
+    n = 2000
+    eps = rng.standard_normal(n) * math.sqrt(LLAR_TRUE["sigma2_eps"])
+    eta = rng.standard_normal(n) * math.sqrt(LLAR_TRUE["sigma2_eta"])
+    xi = rng.standard_normal(n) * math.sqrt(LLAR_TRUE["sigma2_ar"])
+    phi = LLAR_TRUE["phi"]
+    mu = LLAR_TRUE["level_0"]
+    x = xi[0] / math.sqrt(1.0 - phi * phi)
+    y = np.empty(n)
+    for t in range(n):
+        y[t] = mu + x + eps[t]
+        mu = mu + eta[t]
+        x = phi * x + xi[(t + 1) % n]
+    missing = np.sort(rng.choice(np.arange(1, n), size=100, replace=False))
+    y[missing] = np.nan
+
+    # use_exact_diffuse=True: no log-likelihood burn-in (the default
+    # approximate-diffuse set-up drops the first observation's term); the
+    # initialisation is then replaced by the mixed one.
+    mod = sm.tsa.UnobservedComponents(y, level="llevel", autoregressive=1,
+                                      use_exact_diffuse=True)
+    assert mod.loglikelihood_burn == 0
+    assert list(mod.param_names) == ["sigma2.irregular", "sigma2.level",
+                                     "sigma2.ar", "ar.L1"], mod.param_names
+    init = Initialization(mod.k_states)
+    init.set(0, "diffuse")
+    init.set(1, "stationary")
+    mod.ssm.initialization = init
+    p = [LLAR_TRUE["sigma2_eps"], LLAR_TRUE["sigma2_eta"],
+         LLAR_TRUE["sigma2_ar"], phi]
+    fixed = {"loglik": float(mod.loglike(p))}
+    best, fitdesc = tight_fit(mod, start_params=p)
+    mle = {
+        "sigma2_eps": float(best.params[0]),
+        "sigma2_eta": float(best.params[1]),
+        "sigma2_ar": float(best.params[2]),
+        "phi": float(best.params[3]),
+        "loglik": float(best.llf),
+        "optimiser": fitdesc,
+    }
+    return {
+        "source": (
+            f"{SM} UnobservedComponents(y, level='llevel', autoregressive=1, "
+            "use_exact_diffuse=True), then Initialization: state 0 (level) diffuse, state 1 (AR) "
+            "stationary; param order [sigma2.irregular, sigma2.level, "
+            "sigma2.ar, ar.L1]. Data: numpy.random.default_rng("
+            f"{LLAR_SEED}); eps, eta, xi drawn in that order as "
+            "standard_normal(2000)*sqrt(var), then 100 missing points "
+            "(rng.choice of 1..1999 without replacement). Environment: " + ENV),
+        "generated_by": GENERATED_BY,
+        "model": ("y_t = mu_t + x_t + eps_t; mu_{t+1} = mu_t + eta_t; "
+                  "x_{t+1} = phi x_t + xi_{t+1}; mu_0 = 20, x_0 = xi_0 / "
+                  "sqrt(1 - phi^2)"),
+        "seed": LLAR_SEED,
+        "true": dict(LLAR_TRUE),
+        "missing_idx": ilist(missing),
+        "y": flist(y),
+        "fixed": fixed,
+        "mle": mle,
+        "notes": ("State order [level, ar]. One diffuse state. The MLE is "
+                  "started at the true parameters. " + LOGLIK_CONVENTION),
+    }
+
+
 # -------------------------------------------------------------------- main
 
 MAKERS = {
@@ -497,6 +574,7 @@ MAKERS = {
     "llt.json": make_llt,
     "ll_irregular.json": make_ll_irregular,
     "acvf.json": make_acvf,
+    "llar.json": make_llar,
 }
 
 
