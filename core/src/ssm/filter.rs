@@ -277,9 +277,7 @@ impl FilterOutput {
     /// Log-likelihood with the scale concentrated out (F_inf does not scale):
     /// -N/2 log 2 pi - 1/2 sum log F_inf - nobs/2 (1 + log sigma2_hat) - 1/2 sum log F.
     pub fn concentrated_loglik(&self) -> f64 {
-        let n_all = (self.nobs + self.n_diffuse_obs) as f64;
-        let n = self.nobs as f64;
-        -0.5 * (n_all * LN_2PI + self.sum_log_f_inf + n * (1.0 + self.concentrated_scale().ln()) + self.sum_log_f)
+        concentrated_loglik_of(self.nobs, self.n_diffuse_obs, self.sum_v2_f, self.sum_log_f, self.sum_log_f_inf)
     }
 
     /// Assembles the log-likelihood from the accumulated sums.
@@ -733,10 +731,30 @@ fn run_until<D: Dim>(
     out.finish_loglik();
 }
 
+/// [`FilterOutput::concentrated_loglik`] from the sums themselves.
+pub(crate) fn concentrated_loglik_of(
+    nobs: usize,
+    n_diffuse_obs: usize,
+    sum_v2_f: f64,
+    sum_log_f: f64,
+    sum_log_f_inf: f64,
+) -> f64 {
+    let n_all = (nobs + n_diffuse_obs) as f64;
+    let n = nobs as f64;
+    -0.5 * (n_all * LN_2PI + sum_log_f_inf + n * (1.0 + (sum_v2_f / n).ln()) + sum_log_f)
+}
+
+/// (t00, t10, t01, t11, q00, q01, q11) of a two-state step system: T
+/// column by column and RQR' as its three distinct entries.
+pub(crate) fn two_state_system(sys: &super::model::StepSystem) -> [f64; 7] {
+    let (t, q) = (sys.t.as_slice(), sys.rqr.as_slice());
+    [t[0], t[1], t[2], t[3], q[0], 0.5 * (q[1] + q[2]), q[3]]
+}
+
 /// A S A' for a 2 x 2 matrix A = [a00, a01, a10, a11] (row by row) and a
 /// symmetric S = [s00, s01, s11]; returns the same three entries.
 #[inline]
-pub(crate) fn congruence2(a: [f64; 4], s: [f64; 3]) -> [f64; 3] {
+pub fn congruence2(a: [f64; 4], s: [f64; 3]) -> [f64; 3] {
     let [a00, a01, a10, a11] = a;
     let [s00, s01, s11] = s;
     let m00 = a00 * s00 + a01 * s01;
@@ -792,11 +810,7 @@ fn run_two_states<const UNIT_Z: bool>(
     let (c0, c1) = (c[0], c[1]);
     let (mut a0, mut a1) = (a[0], a[1]);
     let (mut p00, mut p01, mut p11) = (p[0], 0.5 * (p[1] + p[2]), p[3]);
-    let load = |sys: &super::model::StepSystem| {
-        let (t, q) = (sys.t.as_slice(), sys.rqr.as_slice());
-        (t[0], t[1], t[2], t[3], q[0], 0.5 * (q[1] + q[2]), q[3])
-    };
-    let (mut t00, mut t10, mut t01, mut t11, mut q00, mut q01, mut q11) = load(sys);
+    let [mut t00, mut t10, mut t01, mut t11, mut q00, mut q01, mut q11] = two_state_system(sys);
     let (mut sum_v2_f, mut nobs) = (0.0, 0usize);
     let mut t = t0;
     let mut converged = false;
@@ -868,7 +882,7 @@ fn run_two_states<const UNIT_Z: bool>(
         let dt = obs.step(t);
         if dt != *cur_dt {
             model.system_for_step(dt, sys);
-            (t00, t10, t01, t11, q00, q01, q11) = load(sys);
+            [t00, t10, t01, t11, q00, q01, q11] = two_state_system(sys);
             *cur_dt = dt;
             plain = false;
         }

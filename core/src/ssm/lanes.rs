@@ -20,8 +20,11 @@
 //! so a fit stays reproducible bit for bit). `tests::matches_the_filter`
 //! checks the results against the filter.
 
-use super::filter::{clear_negative, congruence2, two_state_handoff, FilterOptions, FilterOutput, Handoff, LN_2PI};
-use super::model::{Observations, StateSpace, StepSystem};
+use super::filter::{
+    clear_negative, concentrated_loglik_of, congruence2, two_state_handoff, two_state_system, FilterOptions,
+    FilterOutput, Handoff,
+};
+use super::model::{Observations, StateSpace};
 
 /// Most models per lock-step pass (fewer run in a narrower pass).
 pub(crate) const LANES: usize = 16;
@@ -114,20 +117,14 @@ impl Sums {
 
     /// The concentrated log-likelihood with further sums added.
     fn concentrated(&self, v2_f: f64, log_f: f64, nobs: usize) -> f64 {
-        let n = (self.nobs + nobs) as f64;
-        if n == 0.0 {
-            return f64::NAN;
-        }
-        let n_all = n + self.n_diffuse_obs as f64;
-        let scale = (self.sum_v2_f + v2_f) / n;
-        -0.5 * (n_all * LN_2PI + self.sum_log_f_inf + n * (1.0 + scale.ln()) + self.sum_log_f + log_f)
+        concentrated_loglik_of(
+            self.nobs + nobs,
+            self.n_diffuse_obs,
+            self.sum_v2_f + v2_f,
+            self.sum_log_f + log_f,
+            self.sum_log_f_inf,
+        )
     }
-}
-
-/// Loads (t00, t10, t01, t11, q00, q01, q11) of a step system.
-fn load(sys: &StepSystem) -> [f64; 7] {
-    let (t, q) = (sys.t.as_slice(), sys.rqr.as_slice());
-    [t[0], t[1], t[2], t[3], q[0], 0.5 * (q[1] + q[2]), q[3]]
 }
 
 /// [`lockstep`] compiled for AVX2 where the processor has it (twice the
@@ -169,7 +166,7 @@ fn lockstep<const L: usize>(taken: &mut [(Handoff, Sums, &StateSpace)], obs: &Ob
         st.h0[l] = m.h[0];
         st.c0[l] = m.c[0];
         st.c1[l] = m.c[1];
-        st.set_system(l, &load(&h.sys));
+        st.set_system(l, &two_state_system(&h.sys));
     }
     let mut cur_dt = taken[0].0.cur_dt;
     let mut sum = st.is_sum();
@@ -189,7 +186,7 @@ fn lockstep<const L: usize>(taken: &mut [(Handoff, Sums, &StateSpace)], obs: &Ob
         if dt != cur_dt {
             for (l, (h, _, m)) in taken.iter_mut().enumerate() {
                 m.system_for_step(dt, &mut h.sys);
-                st.set_system(l, &load(&h.sys));
+                st.set_system(l, &two_state_system(&h.sys));
             }
             for l in k..L {
                 st.copy_system(l, 0);

@@ -14,6 +14,7 @@
 //! as in the batch filter.
 
 use nalgebra::{SMatrix, SVector};
+use tagwright::ssm::filter::congruence2;
 use tagwright::ssm::StateSpace;
 use tagwright::tagmodel::TagObs;
 
@@ -272,16 +273,8 @@ impl Sym2 {
 
     /// A P A' + Q for A = [a00, a01; a10, a11] (row by row).
     fn congruence(&self, a: [f64; 4], q: &Sym2) -> Sym2 {
-        let [a00, a01, a10, a11] = a;
-        let m00 = a00 * self.p00 + a01 * self.p01;
-        let m01 = a00 * self.p01 + a01 * self.p11;
-        let m10 = a10 * self.p00 + a11 * self.p01;
-        let m11 = a10 * self.p01 + a11 * self.p11;
-        Sym2 {
-            p00: m00 * a00 + m01 * a01 + q.p00,
-            p01: m00 * a10 + m01 * a11 + q.p01,
-            p11: m10 * a10 + m11 * a11 + q.p11,
-        }
+        let [s00, s01, s11] = congruence2(a, [self.p00, self.p01, self.p11]);
+        Sym2 { p00: s00 + q.p00, p01: s01 + q.p01, p11: s11 + q.p11 }
     }
 
     /// P z.
