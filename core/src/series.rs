@@ -158,13 +158,19 @@ pub struct TagTable {
 impl TagTable {
     /// The table of a freshly read tag: every reading kept as its own value.
     pub fn from_series(s: &TagSeries, period_us: i64, sampling: Sampling) -> Self {
+        Self::from_owned_series(s.clone(), period_us, sampling)
+    }
+
+    /// [`TagTable::from_series`] taking the series: its times, readings and
+    /// qualities move into the table (only `value` is a copy).
+    pub fn from_owned_series(s: TagSeries, period_us: i64, sampling: Sampling) -> Self {
         let n = s.ts_us.len();
         TagTable {
-            tag: s.tag.clone(),
-            ts_us: s.ts_us.clone(),
-            raw: s.values.clone(),
-            quality: s.quality.clone(),
+            tag: s.tag,
+            ts_us: s.ts_us,
             value: s.values.clone(),
+            raw: s.values,
+            quality: s.quality,
             std: vec![f64::NAN; n],
             status: vec![Status::Ok; n],
             fault: vec![None; n],

@@ -242,8 +242,9 @@ pub fn run(
             let mut results: Option<Vec<Vec<TagResult>>> = None;
             let slot = &mut results;
             let survey = survey.as_ref();
+            let input = &input;
             let clean = move || {
-                *slot = Some(jobs.into_par_iter().map(|(u, s, st)| run_unit(u, s, st, survey)).collect());
+                *slot = Some(jobs.into_par_iter().map(|(u, s, st)| run_unit(u, s, st, survey, input)).collect());
             };
             let mut write = || {
                 write_ready(&mut pending, &selected, &mut next, &mut writer, &mut prov, &mut outcome, &mut state_out)
@@ -360,42 +361,69 @@ fn run_unit(
     series: Vec<TagSeries>,
     states: Vec<BTreeMap<String, serde_json::Value>>,
     survey: Option<&Survey>,
+    input: &InputSet,
 ) -> Vec<TagResult> {
     let mut works: Vec<TagWork> = Vec::with_capacity(series.len());
-    for (s, state) in series.iter().zip(states) {
+    let mut counts = Vec::with_capacity(series.len());
+    for (s, state) in series.into_iter().zip(states) {
         let resolved = unit.tags.iter().find(|(t, _)| *t == s.tag).map(|(_, r)| r);
         let settings = resolved.map(|r| r.settings.clone()).unwrap_or_default();
         let period = settings.period_us.or_else(|| infer_period_us(&s.ts_us)).unwrap_or(1_000_000);
-        let table = TagTable::from_series(s, period, settings.sampling);
+        counts.push(s.counts);
+        // The readings move into the table (no copy of the series is kept).
+        let table = TagTable::from_owned_series(s, period, settings.sampling);
         works.push(TagWork { table, settings: Arc::new(settings), report: Default::default(), state });
     }
     let group = unit.tags.first().and_then(|(_, r)| r.group.as_ref().map(|g| g.id.clone()));
     let error = run_chain(unit, &mut works, survey);
     works
         .into_iter()
-        .zip(&series)
-        .map(|(w, s)| {
-            // A failed tag keeps its raw readings (rebuilt from the input, so
-            // the success path copies nothing); the provenance says why.
-            let raw = || TagTable::from_series(s, w.table.period_us, w.table.sampling);
+        .zip(counts)
+        .map(|(w, counts)| {
+            // A failed tag keeps its raw readings, read again from the input
+            // (failures are rare; the success path keeps no copy); the
+            // provenance says why.
             let (table, error) = match &error {
-                Some(e) => (raw(), Some(e.clone())),
+                Some(e) => failed_table(input, &w.table, e.clone()),
                 None => match w.table.check() {
                     Ok(()) => (w.table, None),
-                    Err(e) => (raw(), Some(format!("internal check failed: {e}"))),
+                    Err(e) => failed_table(input, &w.table, format!("internal check failed: {e}")),
                 },
             };
             TagResult {
                 table,
                 work_report: w.report,
                 state: w.state,
-                counts: s.counts,
+                counts,
                 error,
                 step_names: unit.names.clone(),
                 group: group.clone(),
             }
         })
         .collect()
+}
+
+/// The output table of a tag whose chain failed: its readings as read,
+/// unchanged, from a fresh read of the input. Should that read fail too (the
+/// file changed under the run), the table is empty and the error says so.
+fn failed_table(input: &InputSet, worked: &TagTable, error: String) -> (TagTable, Option<String>) {
+    let (period, sampling) = (worked.period_us, worked.sampling);
+    match input.read_tags(std::slice::from_ref(&worked.tag)).map(|mut v| v.pop()) {
+        Ok(Some(s)) => (TagTable::from_owned_series(s, period, sampling), Some(error)),
+        Ok(None) => {
+            (empty_table(&worked.tag, period, sampling), Some(format!("{error}; its readings could not be read again")))
+        }
+        Err(e) => (
+            empty_table(&worked.tag, period, sampling),
+            Some(format!("{error}; its readings could not be read again: {e}")),
+        ),
+    }
+}
+
+fn empty_table(tag: &str, period: i64, sampling: crate::series::Sampling) -> TagTable {
+    let s =
+        TagSeries { tag: tag.to_string(), ts_us: vec![], values: vec![], quality: vec![], counts: Default::default() };
+    TagTable::from_owned_series(s, period, sampling)
 }
 
 /// Runs the chain; a step error or panic fails the whole unit.
@@ -455,10 +483,21 @@ fn write_result(
     let evs = if r.error.is_none() { events(&r.table, &r.step_names) } else { Vec::new() };
     let mut by_status = [0u64; 4];
     let mut faults: BTreeMap<&'static str, u64> = BTreeMap::new();
-    for i in 0..r.table.len() {
-        by_status[r.table.status[i] as usize] += 1;
-        if let Some(f) = r.table.fault[i] {
-            *faults.entry(f.as_str()).or_default() += 1;
+    // Blocks of unchanged rows (the common case) are counted whole.
+    let t = &r.table;
+    for lo in (0..t.len()).step_by(COUNT_BLOCK) {
+        let hi = (lo + COUNT_BLOCK).min(t.len());
+        let changed = t.status[lo..hi].iter().fold(false, |any, &s| any | (s != Status::Ok))
+            | t.fault[lo..hi].iter().fold(false, |any, f| any | f.is_some());
+        if !changed {
+            by_status[Status::Ok as usize] += (hi - lo) as u64;
+            continue;
+        }
+        for i in lo..hi {
+            by_status[t.status[i] as usize] += 1;
+            if let Some(f) = t.fault[i] {
+                *faults.entry(f.as_str()).or_default() += 1;
+            }
         }
     }
     for (total, n) in outcome.rows_by_status.iter_mut().zip(by_status) {
@@ -479,6 +518,9 @@ fn write_result(
     state_out.insert(r.table.tag.clone(), r.state);
     writer.write_tag_owned(r.table)
 }
+
+/// Rows per block of the result counts.
+const COUNT_BLOCK: usize = 256;
 
 /// Statuses in output order, for summaries.
 pub fn status_names() -> [&'static str; 4] {

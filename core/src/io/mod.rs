@@ -225,13 +225,18 @@ pub fn infer_period_us(ts: &[i64]) -> Option<i64> {
     // positive spacings equal the first one, that spacing is the median
     // (a run longer than half a sorted list covers its middle).
     let first = ts.windows(2).map(|w| w[1].saturating_sub(w[0])).find(|&d| d > 0)?;
+    // Branch-free and without saturation, so the loop vectorises: a
+    // spacing is positive exactly when the later time is greater, and the
+    // wrapped difference of such a pair is negative when the spacing is
+    // beyond i64::MAX, so it never equals `first` unless `first` itself
+    // saturated (then the slow path decides).
     let (mut positive, mut same) = (0usize, 0usize);
     for w in ts.windows(2) {
-        let d = w[1].saturating_sub(w[0]);
-        positive += usize::from(d > 0);
-        same += usize::from(d == first);
+        let up = w[1] > w[0];
+        positive += usize::from(up);
+        same += usize::from(up & (w[1].wrapping_sub(w[0]) == first));
     }
-    if 2 * same > positive {
+    if first < i64::MAX && 2 * same > positive {
         return Some(first);
     }
     let mut d: Vec<i64> = ts.windows(2).map(|w| w[1].saturating_sub(w[0])).filter(|&d| d > 0).collect();

@@ -62,6 +62,10 @@ fn period_is_the_median_spacing() {
     assert_eq!(infer_period_us(&[0, 5, 10, 30, 35]), Some(5));
     assert_eq!(infer_period_us(&[0, 5, 15, 30]), Some(10));
     assert_eq!(infer_period_us(&[0, 10, 15, 20]), Some(5), "lower median");
+    // Spacings beyond i64::MAX count as i64::MAX.
+    assert_eq!(infer_period_us(&[i64::MIN, i64::MAX]), Some(i64::MAX));
+    assert_eq!(infer_period_us(&[i64::MIN, -10, -5, 0, i64::MAX]), Some(5));
+    assert_eq!(infer_period_us(&[i64::MIN, 0, 1, i64::MAX]), Some(i64::MAX - 1));
 }
 
 #[test]

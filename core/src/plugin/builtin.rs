@@ -16,7 +16,10 @@ use std::sync::Arc;
 use serde::Deserialize;
 
 use super::{parse_params, Step, StepContext, StepError, TagWork};
-use crate::series::{Fault, Quality, Status};
+use crate::series::{Fault, Quality, Status, TagTable};
+
+/// Rows per block of the steps' scans.
+const SCAN_BLOCK: usize = 256;
 
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize)]
 #[serde(rename_all = "snake_case")]
@@ -52,16 +55,23 @@ impl Step for QualityStep {
     fn apply(&self, tags: &mut [TagWork], ctx: &StepContext) -> Result<(), StepError> {
         for work in tags.iter_mut() {
             let t = &mut work.table;
-            for i in 0..t.len() {
-                if t.status[i] != Status::Ok || t.fault[i].is_some() {
+            let bad = |t: &TagTable, i: usize| {
+                t.quality[i] == Quality::Bad
+                    || !t.raw[i].is_finite()
+                    || (self.reject_uncertain && t.quality[i] == Quality::Uncertain)
+            };
+            // Most blocks hold no bad reading: they are scanned without
+            // branches (vectorised) and skipped.
+            for lo in (0..t.len()).step_by(SCAN_BLOCK) {
+                let hi = (lo + SCAN_BLOCK).min(t.len());
+                if !(lo..hi).fold(false, |any, i| any | bad(t, i)) {
                     continue;
                 }
-                let bad = t.quality[i] == Quality::Bad
-                    || !t.raw[i].is_finite()
-                    || (self.reject_uncertain && t.quality[i] == Quality::Uncertain);
-                if bad {
-                    t.decide(i, Status::Rejected, Some(Fault::BadQuality), ctx.index, f64::NAN, f64::NAN);
-                    t.value[i] = f64::NAN;
+                for i in lo..hi {
+                    if t.status[i] == Status::Ok && t.fault[i].is_none() && bad(t, i) {
+                        t.decide(i, Status::Rejected, Some(Fault::BadQuality), ctx.index, f64::NAN, f64::NAN);
+                        t.value[i] = f64::NAN;
+                    }
                 }
             }
         }
@@ -126,23 +136,31 @@ impl Step for RangeStep {
                 });
             }
             let t = &mut work.table;
-            for i in 0..t.len() {
-                if t.status[i] != Status::Ok || t.fault[i].is_some() || !t.raw[i].is_finite() {
+            // A NaN reading compares false both ways, so it is never out of range.
+            let out = |x: f64| (x < lo) | (x > hi);
+            for lo_i in (0..t.len()).step_by(SCAN_BLOCK) {
+                let hi_i = (lo_i + SCAN_BLOCK).min(t.len());
+                if !t.raw[lo_i..hi_i].iter().fold(false, |any, &x| any | out(x)) {
                     continue;
                 }
-                let x = t.raw[i];
-                let limit = if x < lo {
-                    lo
-                } else if x > hi {
-                    hi
-                } else {
-                    continue;
-                };
-                if self.flag_only {
-                    t.decide(i, Status::Ok, Some(Fault::Range), ctx.index, x, limit);
-                } else {
-                    t.decide(i, Status::Rejected, Some(Fault::Range), ctx.index, x, limit);
-                    t.value[i] = f64::NAN;
+                for i in lo_i..hi_i {
+                    if t.status[i] != Status::Ok || t.fault[i].is_some() || !t.raw[i].is_finite() {
+                        continue;
+                    }
+                    let x = t.raw[i];
+                    let limit = if x < lo {
+                        lo
+                    } else if x > hi {
+                        hi
+                    } else {
+                        continue;
+                    };
+                    if self.flag_only {
+                        t.decide(i, Status::Ok, Some(Fault::Range), ctx.index, x, limit);
+                    } else {
+                        t.decide(i, Status::Rejected, Some(Fault::Range), ctx.index, x, limit);
+                        t.value[i] = f64::NAN;
+                    }
                 }
             }
         }
