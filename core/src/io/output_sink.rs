@@ -44,8 +44,11 @@ impl Sink {
         let (back_tx, spare) = std::sync::mpsc::sync_channel::<Vec<u8>>(QUEUED + 2);
         let handle = std::thread::Builder::new().name("tagwright-file".into()).spawn(move || {
             let mut file = file;
+            let mut written = 0u64;
             for mut block in rx {
                 file.write_all(&block)?;
+                start_writeback(&file, written, block.len() as u64);
+                written += block.len() as u64;
                 block.clear();
                 // The sink may be gone or have enough spares; either is fine.
                 let _ = back_tx.try_send(block);
@@ -69,6 +72,27 @@ impl Sink {
         }
     }
 }
+
+/// Asks the kernel to start writing bytes `offset..offset + len` of `file`
+/// to disk now, without waiting (Linux `sync_file_range`). Otherwise a
+/// gigabyte of output sits in the page cache until the closing `fsync`,
+/// which then waits for all of it (0.4 s of a 5 s run, with the processors
+/// idle); started block by block, the disk writes overlap with encoding.
+/// A failure is ignored: this only moves work earlier, and the `fsync` at
+/// the end still reports any write error.
+#[cfg(target_os = "linux")]
+fn start_writeback(file: &File, offset: u64, len: u64) {
+    use std::os::fd::AsRawFd;
+    let (Ok(offset), Ok(len)) = (i64::try_from(offset), i64::try_from(len)) else { return };
+    // SAFETY: the descriptor is open for the life of `file`; the call only
+    // reads its arguments.
+    unsafe {
+        libc::sync_file_range(file.as_raw_fd(), offset as _, len as _, libc::SYNC_FILE_RANGE_WRITE);
+    }
+}
+
+#[cfg(not(target_os = "linux"))]
+fn start_writeback(_file: &File, _offset: u64, _len: u64) {}
 
 impl Threaded {
     /// Hands the current block to the writing thread.
