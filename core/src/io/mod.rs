@@ -97,6 +97,7 @@ mod long_pq;
 mod output;
 mod output_encode;
 mod output_keys;
+mod output_plain;
 mod output_sink;
 mod quality;
 mod time;

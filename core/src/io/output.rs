@@ -75,8 +75,9 @@ pub fn cleaned_schema() -> SchemaRef {
     ]))
 }
 
-/// Writer settings of `cleaned.parquet` (for the columns written by arrow-rs:
-/// `ts`, `raw`, `value`, `std`), also used by the bare read+write
+/// Writer settings of `cleaned.parquet` (for its plain columns `ts`, `raw`,
+/// `value`, `std`, written by Parquet's column writers), also used by the
+/// bare read+write
 /// benchmark: the chosen compression (zstd level 1 or snappy); no
 /// dictionary for `ts`, `raw`, `value`, `std`; delta encoding for
 /// `ts`; byte-stream-split for the floats; statistics for `tag` and `ts`
@@ -156,12 +157,13 @@ impl CleanedWriter {
         ];
         let schema = cleaned_schema();
         // The ArrowWriter sets up the Parquet schema and the embedded Arrow
-        // schema; its lower-level parts then write the row groups.
-        let writer = ArrowWriter::try_new(file, schema.clone(), Some(writer_properties(compression, metadata)))
+        // schema; the row groups are then written column chunk by column
+        // chunk (output_encode.rs).
+        let writer = ArrowWriter::try_new(file, schema, Some(writer_properties(compression, metadata)))
             .map_err(|e| write_error(&partial, e))?;
-        let (file, factory) = writer.into_serialized_writer().map_err(|e| write_error(&partial, e))?;
+        let (file, _) = writer.into_serialized_writer().map_err(|e| write_error(&partial, e))?;
         let abort = Arc::new(AtomicBool::new(false));
-        let encoder = Encoder::new(partial.clone(), file, factory, schema, threads > 1)?;
+        let encoder = Encoder::new(partial.clone(), file, threads > 1)?;
         let (tx, worker, inline) = if threads > 1 {
             let (tx, worker) = spawn(encoder, abort.clone())?;
             (Some(tx), Some(worker), None)

@@ -2,12 +2,13 @@
 //! turns buffered rows into Parquet row groups, so the caller reads and
 //! cleans the next tags while earlier ones are encoded.
 //!
-//! The float and time columns go through arrow-rs's column writers; the
-//! dictionary string columns `tag`, `status` and `fault` are built from
-//! their keys by [`super::output_keys`] (the Arrow writer would look every
-//! row up by its string). Each batch's columns are encoded as two groups on
-//! two threads (the worker and one long-lived helper thread, so no thread,
-//! and no fresh allocator heap, is started per batch).
+//! The plain columns `ts`, `raw`, `value`, `std` go through Parquet's
+//! column writers ([`super::output_plain`]); the dictionary string columns
+//! `tag`, `status` and `fault` are built from their keys by
+//! [`super::output_keys`] (the Arrow writer would look every row up by its
+//! string). Each batch's columns are encoded as two groups on two threads
+//! (the worker and one long-lived helper thread, so no thread, and no fresh
+//! allocator heap, is started per batch).
 
 use std::fs::File;
 use std::path::{Path, PathBuf};
@@ -15,26 +16,24 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::mpsc::{Receiver, SyncSender};
 use std::sync::Arc;
 
-use arrow_array::builder::NullBufferBuilder;
-use arrow_array::{Array, ArrayRef, Float64Array, TimestampMicrosecondArray};
-use arrow_schema::SchemaRef;
-use parquet::arrow::arrow_writer::{compute_leaves, ArrowColumnWriter, ArrowRowGroupWriterFactory};
 use parquet::errors::ParquetError;
 use parquet::file::writer::SerializedFileWriter;
 
 use super::output::ROW_GROUP_ROWS;
 use super::output_keys::KeyChunk;
+use super::output_plain::PlainChunk;
 use super::output_sink::Sink;
 use super::{IoError, Result};
 use crate::series::{Fault, Status, TagTable};
 
 /// Column positions in the cleaned schema.
 const TAG: usize = 0;
+const TS: usize = 1;
 const RAW: usize = 2;
+const VALUE: usize = 3;
+const STD: usize = 4;
 const STATUS: usize = 5;
 const FAULT: usize = 6;
-/// The columns written by arrow-rs's column writers: `ts`, `raw`, `value`, `std`.
-const ARROW_COLUMNS: [usize; 4] = [1, 2, 3, 4];
 
 /// Rows waiting to be encoded, column by column.
 #[derive(Debug, Default)]
@@ -108,14 +107,12 @@ impl Buffer {
 pub(super) struct Encoder {
     partial: PathBuf,
     file: SerializedFileWriter<Sink>,
-    factory: ArrowRowGroupWriterFactory,
-    schema: SchemaRef,
-    /// Column writers of the row group being filled (those of
-    /// [`ARROW_COLUMNS`], by column position), its key columns (`tag`,
-    /// `status`, `fault`), and its rows.
+    /// The row group being filled (see [`Group`]) and its rows.
     group: Option<Group>,
     group_rows: usize,
-    groups_done: usize,
+    /// The buffers of the last row group's plain column chunks, by column
+    /// position, for the next group's chunks.
+    buffers: [Vec<u8>; 5],
     /// The helper thread that encodes `raw` and the key columns while the
     /// worker encodes `ts`, `value`, `std`; `None` when encoding runs on one
     /// thread. (`raw` and `value` are the costly columns.)
@@ -126,28 +123,19 @@ fn write_error(path: &Path, e: impl Into<super::BoxError>) -> IoError {
     IoError::Write { path: path.to_path_buf(), source: e.into() }
 }
 
-/// The row group being filled: arrow-rs writers by column position, and
-/// the key columns `tag`, `status`, `fault`.
-type Group = (Vec<(usize, ArrowColumnWriter)>, [KeyChunk; 3]);
-
-/// One buffer's columns: the Arrow arrays of [`ARROW_COLUMNS`] and the keys
-/// of the dictionary columns.
-struct Columns {
-    arrays: Vec<ArrayRef>,
-    tags: Vec<String>,
-    tag_keys: Vec<i32>,
-    status: Vec<i32>,
-    fault: Vec<Option<i32>>,
+/// The row group being filled: the plain columns `ts`, `value`, `std`
+/// (encoded on the worker), `raw` (on the helper), and the key columns
+/// `tag`, `status`, `fault` (on the helper).
+struct Group {
+    ts: PlainChunk,
+    value: PlainChunk,
+    std: PlainChunk,
+    raw: PlainChunk,
+    keys: [KeyChunk; 3],
 }
 
 impl Encoder {
-    pub(super) fn new(
-        partial: PathBuf,
-        file: SerializedFileWriter<Sink>,
-        factory: ArrowRowGroupWriterFactory,
-        schema: SchemaRef,
-        parallel: bool,
-    ) -> Result<Self> {
+    pub(super) fn new(partial: PathBuf, file: SerializedFileWriter<Sink>, parallel: bool) -> Result<Self> {
         let helper = if parallel {
             let pool = rayon::ThreadPoolBuilder::new()
                 .num_threads(1)
@@ -158,13 +146,12 @@ impl Encoder {
         } else {
             None
         };
-        Ok(Encoder { partial, file, factory, schema, group: None, group_rows: 0, groups_done: 0, helper })
+        Ok(Encoder { partial, file, group: None, group_rows: 0, buffers: Default::default(), helper })
     }
 
     /// Encodes one buffer of rows, closing row groups as they fill.
-    pub(super) fn push(&mut self, b: Buffer) -> Result<()> {
-        let cols = columns(b);
-        let rows = cols.tag_keys.len();
+    pub(super) fn push(&mut self, cols: Buffer) -> Result<()> {
+        let rows = cols.len();
         let mut at = 0;
         while at < rows {
             let n = (ROW_GROUP_ROWS - self.group_rows).min(rows - at);
@@ -205,58 +192,53 @@ impl Encoder {
 
     /// Encodes rows `at..at + n` of `cols` into the current row group:
     /// `raw` and the key columns on the helper thread, the others on this one.
-    fn encode(&mut self, cols: &Columns, at: usize, n: usize) -> Result<()> {
+    fn encode(&mut self, cols: &Buffer, at: usize, n: usize) -> Result<()> {
         let partial = &self.partial;
         if self.group.is_none() {
-            let writers = self.factory.create_column_writers(self.groups_done).map_err(|e| write_error(partial, e))?;
-            let writers: Vec<(usize, ArrowColumnWriter)> =
-                writers.into_iter().enumerate().filter(|(i, _)| ARROW_COLUMNS.contains(i)).collect();
             let descr = self.file.schema_descr();
-            let keys = [
-                KeyChunk::new(descr.column(TAG), true),
-                KeyChunk::new(descr.column(STATUS), false),
-                KeyChunk::new(descr.column(FAULT), false),
-            ];
-            self.group = Some((writers, keys));
+            let props = self.file.properties();
+            let buffers = &mut self.buffers;
+            let mut plain = |i: usize| {
+                let buf = std::mem::take(&mut buffers[i]);
+                PlainChunk::new(descr.column(i), props.clone(), buf).map_err(|e| write_error(partial, e))
+            };
+            self.group = Some(Group {
+                ts: plain(TS)?,
+                raw: plain(RAW)?,
+                value: plain(VALUE)?,
+                std: plain(STD)?,
+                keys: [
+                    KeyChunk::new(descr.column(TAG), true),
+                    KeyChunk::new(descr.column(STATUS), false),
+                    KeyChunk::new(descr.column(FAULT), false),
+                ],
+            });
         }
-        let Some((writers, keys)) = self.group.as_mut() else { return Err(write_error(partial, "no row group")) };
-        let fields = self.schema.fields();
-        let mut helper_jobs = Vec::new();
-        let mut own_jobs = Vec::new();
-        for ((i, w), col) in writers.iter_mut().zip(&cols.arrays) {
-            let leaves = compute_leaves(&fields[*i], &col.slice(at, n)).map_err(|e| write_error(partial, e))?;
-            if *i == RAW {
-                helper_jobs.push((w, leaves));
-            } else {
-                own_jobs.push((w, leaves));
-            }
-        }
-        let write_all = |jobs: Vec<(&mut ArrowColumnWriter, Vec<_>)>| -> parquet::errors::Result<()> {
-            for (w, leaves) in jobs {
-                for leaf in &leaves {
-                    w.write(leaf)?;
-                }
-            }
-            Ok(())
+        let Some(g) = self.group.as_mut() else { return Err(write_error(partial, "no row group")) };
+        let r = at..at + n;
+        let (ts, value, std) = (&mut g.ts, &mut g.value, &mut g.std);
+        let mut own = || -> parquet::errors::Result<()> {
+            ts.push_times(&cols.ts[r.clone()])?;
+            value.push_floats(&cols.value[r.clone()], |_, x| x.is_nan())?;
+            std.push_floats(&cols.std[r.clone()], |_, x| x.is_nan())
         };
-        let write_keys = |keys: &mut [KeyChunk; 3]| -> parquet::errors::Result<()> {
-            let r = at..at + n;
+        let (raw, keys) = (&mut g.raw, &mut g.keys);
+        let mut theirs = || -> parquet::errors::Result<()> {
+            // `raw` is null on inserted rows; a NaN reading stays NaN.
+            let raw_null = &cols.raw_null[r.clone()];
+            raw.push_floats(&cols.raw[r.clone()], |i, _| raw_null[i])?;
             let tags: Vec<&str> = cols.tags.iter().map(|t| t.as_str()).collect();
             let [tag, status, fault] = keys;
             tag.push(&cols.tag_keys[r.clone()], |k| usize::try_from(k).ok(), &tags)?;
             let statuses: Vec<&str> = Status::ALL.iter().map(|s| s.as_str()).collect();
             status.push(&cols.status[r.clone()], |k| usize::try_from(k).ok(), &statuses)?;
             let faults: Vec<&str> = Fault::ALL.iter().map(|f| f.as_str()).collect();
-            fault.push(&cols.fault[r], |k| k.and_then(|k| usize::try_from(k).ok()), &faults)
+            fault.push(&cols.fault[r.clone()], |k| k.and_then(|k| usize::try_from(k).ok()), &faults)
         };
-        let Some(pool) = &self.helper else {
-            own_jobs.extend(helper_jobs);
-            write_all(own_jobs).and_then(|()| write_keys(keys)).map_err(|e| write_error(partial, e))?;
-            self.group_rows += n;
-            return Ok(());
+        let (mine, theirs) = match &self.helper {
+            None => (own(), theirs()),
+            Some(pool) => on_two_threads(pool, theirs, own),
         };
-        let (mine, theirs) =
-            on_two_threads(pool, || write_all(helper_jobs).and_then(|()| write_keys(keys)), || write_all(own_jobs));
         mine.and(theirs).map_err(|e| write_error(partial, e))?;
         self.group_rows += n;
         Ok(())
@@ -266,69 +248,47 @@ impl Encoder {
     /// threads, as they were encoded) and appends it to the file.
     fn close_group(&mut self) -> Result<()> {
         let partial = &self.partial;
-        let Some((writers, keys)) = self.group.take() else { return Ok(()) };
-        if let Some(k) = keys.iter().find(|k| k.rows() != self.group_rows) {
-            return Err(write_error(partial, format!("{} rows in a key column of {}", k.rows(), self.group_rows)));
+        let Some(g) = self.group.take() else { return Ok(()) };
+        let rows = self.group_rows as u64;
+        let plain_rows = [g.ts.rows(), g.raw.rows(), g.value.rows(), g.std.rows()];
+        if g.keys.iter().any(|k| k.rows() as u64 != rows) || plain_rows.iter().any(|&r| r != rows) {
+            return Err(write_error(partial, format!("a column's rows differ from the row group's {rows}")));
         }
-        let (helper_jobs, own_jobs): (Vec<_>, Vec<_>) = writers.into_iter().partition(|(i, _)| *i == RAW);
-        let close_all = |jobs: Vec<(usize, ArrowColumnWriter)>| {
-            jobs.into_iter().map(|(i, w)| w.close().map(|c| (i, c))).collect::<parquet::errors::Result<Vec<_>>>()
-        };
-        let finish_keys = |keys: [KeyChunk; 3]| {
+        let Group { ts, raw, value, std, keys } = g;
+        let own = || Ok::<_, ParquetError>([(TS, ts.finish()?), (VALUE, value.finish()?), (STD, std.finish()?)]);
+        let theirs = || {
             let [tag, status, fault] = keys;
-            Ok::<_, ParquetError>([(TAG, tag.finish()?), (STATUS, status.finish()?), (FAULT, fault.finish()?)])
+            Ok::<_, ParquetError>([
+                (RAW, raw.finish()?),
+                (TAG, tag.finish()?),
+                (STATUS, status.finish()?),
+                (FAULT, fault.finish()?),
+            ])
         };
-        let (mut chunks, key_chunks) = match &self.helper {
-            None => {
-                let mut all = close_all(own_jobs).map_err(|e| write_error(partial, e))?;
-                all.extend(close_all(helper_jobs).map_err(|e| write_error(partial, e))?);
-                (all, finish_keys(keys).map_err(|e| write_error(partial, e))?)
-            }
-            Some(pool) => {
-                let (mine, theirs) =
-                    on_two_threads(pool, || Ok((close_all(helper_jobs), finish_keys(keys))), || close_all(own_jobs));
-                let mut all = mine.map_err(|e| write_error(partial, e))?;
-                let (raw, keys) = theirs.map_err(|e| write_error(partial, e))?;
-                all.extend(raw.map_err(|e| write_error(partial, e))?);
-                (all, keys.map_err(|e| write_error(partial, e))?)
-            }
+        let (mine, theirs) = match &self.helper {
+            None => (own(), theirs()),
+            Some(pool) => on_two_threads(pool, theirs, own),
         };
+        let mut chunks: Vec<_> = mine.map_err(|e| write_error(partial, e))?.into_iter().collect();
+        chunks.extend(theirs.map_err(|e| write_error(partial, e))?);
         chunks.sort_by_key(|c| c.0);
-        let mut chunks = chunks.into_iter().peekable();
-        let mut key_chunks = key_chunks.into_iter().peekable();
+        if chunks.iter().enumerate().any(|(i, c)| c.0 != i) {
+            return Err(write_error(partial, "the row group's column chunks do not match its columns"));
+        }
         let mut rg = self.file.next_row_group().map_err(|e| write_error(partial, e))?;
-        for i in 0..self.schema.fields().len() {
-            if chunks.peek().is_some_and(|c| c.0 == i) {
-                if let Some((_, chunk)) = chunks.next() {
-                    chunk.append_to_row_group(&mut rg).map_err(|e| write_error(partial, e))?;
+        for (i, (bytes, close)) in chunks {
+            rg.append_column(&bytes, close).map_err(|e| write_error(partial, e))?;
+            // A plain column's buffer goes back for the next group's chunk.
+            if matches!(i, TS | RAW | VALUE | STD) {
+                if let (Some(slot), Ok(b)) = (self.buffers.get_mut(i), bytes.try_into_mut()) {
+                    *slot = b.into();
                 }
-            } else if key_chunks.peek().is_some_and(|c| c.0 == i) {
-                if let Some((_, (bytes, close))) = key_chunks.next() {
-                    rg.append_column(&bytes, close).map_err(|e| write_error(partial, e))?;
-                }
-            } else {
-                return Err(write_error(partial, format!("no encoded chunk for column {i}")));
             }
         }
         rg.close().map_err(|e| write_error(partial, e))?;
-        self.groups_done += 1;
         self.group_rows = 0;
         Ok(())
     }
-}
-
-/// A buffer's columns: Arrow arrays for `ts`, `raw`, `value`, `std`, keys
-/// for the others.
-fn columns(b: Buffer) -> Columns {
-    let ts = TimestampMicrosecondArray::new(b.ts.into(), None).with_timezone("UTC");
-    let arrays: Vec<ArrayRef> = vec![
-        Arc::new(ts),
-        Arc::new(raw_floats(b.raw, &b.raw_null)),
-        Arc::new(nullable_floats(b.value)),
-        Arc::new(nullable_floats(b.std)),
-    ];
-    debug_assert!(arrays.iter().all(|a| a.len() == b.tag_keys.len()));
-    Columns { arrays, tags: b.tags, tag_keys: b.tag_keys, status: b.status, fault: b.fault }
 }
 
 /// The encoding thread: it returns the finished file (`None` when stopped early).
@@ -364,40 +324,4 @@ fn on_two_threads<A: Send, B>(
     });
     let theirs = out.unwrap_or_else(|| Err(ParquetError::General("the encoding helper did not finish".into())));
     (mine, theirs)
-}
-
-/// Floats with NaN written as null.
-fn nullable_floats(mut v: Vec<f64>) -> Float64Array {
-    let null: Vec<bool> = v.iter().map(|x| x.is_nan()).collect();
-    for x in v.iter_mut().filter(|x| x.is_nan()) {
-        *x = 0.0;
-    }
-    floats_with_nulls(v, &null)
-}
-
-/// The `raw` column: null on inserted rows, NaN kept elsewhere.
-fn raw_floats(mut v: Vec<f64>, null: &[bool]) -> Float64Array {
-    for (x, _) in v.iter_mut().zip(null).filter(|(_, &n)| n) {
-        *x = 0.0;
-    }
-    floats_with_nulls(v, null)
-}
-
-/// A float column with the rows marked in `null` null (appended run by run).
-fn floats_with_nulls(v: Vec<f64>, null: &[bool]) -> Float64Array {
-    if !null.contains(&true) {
-        return Float64Array::new(v.into(), None);
-    }
-    let mut nulls = NullBufferBuilder::new(v.len());
-    let mut i = 0;
-    while i < null.len() {
-        let run = null[i..].iter().take_while(|&&n| n == null[i]).count();
-        if null[i] {
-            nulls.append_n_nulls(run);
-        } else {
-            nulls.append_n_non_nulls(run);
-        }
-        i += run;
-    }
-    Float64Array::new(v.into(), nulls.finish())
 }
