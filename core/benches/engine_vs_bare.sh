@@ -74,4 +74,6 @@ echo "ratio = engine seconds / bare read+write seconds (target <= 1.30). The bar
 echo "thread (arrow-rs's ArrowWriter); the engine on all cores (engine_s) and held to one (eng1thr_s)."
 echo "The engine writes seven columns (tag, ts, raw, value, std, status, fault) where the bare copy"
 echo "writes the four it read, about twice the bytes on these noisy floats."
+echo "The engine writes whole 4 MB blocks past the page cache where the file system allows it"
+echo "(O_DIRECT, Linux; see core/src/io/output_sink.rs); the bare copy writes through the cache."
 echo "bare_copy also times tagwright's own input/output path; run it alone for that figure."
