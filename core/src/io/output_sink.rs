@@ -144,15 +144,16 @@ impl Disk {
                     st.len = 0;
                     self.written += BLOCK as u64;
                 }
-                // Refused (the file system's alignment, say): this block and
-                // the rest go through the cache.
-                Err(e) if e.raw_os_error() == Some(EINVAL) => {
+                // Refused (the file system's alignment, or no support after
+                // all): this block is written again at its place, and it and
+                // the rest go through the cache. A real failure (a full
+                // disk) fails there too and is reported.
+                Err(_) => {
                     let block = st.bytes().to_vec();
                     self.staging = None;
                     set_uncached(&self.file, false);
                     self.cached(&block)?;
                 }
-                Err(e) => return Err(e),
             }
         }
         self.cached(data)
@@ -189,11 +190,6 @@ fn write_all_at(mut file: &File, data: &[u8], offset: u64) -> io::Result<()> {
     file.seek(SeekFrom::Start(offset))?;
     file.write_all(data)
 }
-
-#[cfg(target_os = "linux")]
-const EINVAL: i32 = libc::EINVAL;
-#[cfg(not(target_os = "linux"))]
-const EINVAL: i32 = 22;
 
 /// Turns uncached writes (`O_DIRECT`) on or off; false when the file
 /// system (or the platform) does not allow it.
