@@ -15,6 +15,7 @@
 
 use nalgebra::{SMatrix, SVector};
 use tagwright::ssm::filter::congruence2;
+use tagwright::ssm::model::StepSystem;
 use tagwright::ssm::StateSpace;
 use tagwright::tagmodel::TagObs;
 
@@ -55,12 +56,12 @@ pub struct GateOptions {
 /// grid point k may be rejected (pseudo-observations may not).
 pub fn run(model: &StateSpace, obs: &TagObs, opts: &GateOptions, can_gate: &dyn Fn(usize) -> bool) -> GateOutput {
     match model.state_dim() {
-        1 => run_m::<1>(model, obs, opts, can_gate),
-        2 => run_2(model, obs, opts, can_gate),
-        3 => run_m::<3>(model, obs, opts, can_gate),
-        4 => run_m::<4>(model, obs, opts, can_gate),
-        5 => run_m::<5>(model, obs, opts, can_gate),
-        _ => run_m::<6>(model, obs, opts, can_gate),
+        1 => pass::<1, SMatrix<f64, 1, 1>>(model, obs, opts, can_gate),
+        2 => pass::<2, Sym2>(model, obs, opts, can_gate),
+        3 => pass::<3, SMatrix<f64, 3, 3>>(model, obs, opts, can_gate),
+        4 => pass::<4, SMatrix<f64, 4, 4>>(model, obs, opts, can_gate),
+        5 => pass::<5, SMatrix<f64, 5, 5>>(model, obs, opts, can_gate),
+        _ => pass::<6, SMatrix<f64, 6, 6>>(model, obs, opts, can_gate),
     }
 }
 
@@ -68,7 +69,159 @@ fn mat<const M: usize>(d: &nalgebra::DMatrix<f64>) -> SMatrix<f64, M, M> {
     SMatrix::<f64, M, M>::from_fn(|i, j| d[(i, j)])
 }
 
-fn run_m<const M: usize>(
+/// The covariance arithmetic of the pass, for M states: a full fixed-size
+/// matrix ([`SMatrix`]), or for two states the three distinct entries of
+/// the symmetric matrix ([`Sym2`], a third of the operations; level plus
+/// AR(1), the default model of most tags, has two states, and the pass runs
+/// over every reading of the window). The decisions are the same
+/// (`the_two_state_pass_agrees_with_the_matrix_pass`).
+trait Cov<const M: usize>: Copy {
+    /// The transition matrix as this arithmetic holds it.
+    type T: Copy;
+    /// P1 = P1* + kappa P1_inf.
+    fn initial(model: &StateSpace, kappa: f64) -> Self;
+    /// T and RQR' of a step system.
+    fn system(sys: &StepSystem) -> (Self::T, Self);
+    /// T a + c.
+    fn predict_mean(t: &Self::T, a: &SVector<f64, M>, c: &SVector<f64, M>) -> SVector<f64, M>;
+    /// T P T' + Q.
+    fn predict(&self, t: &Self::T, q: &Self) -> Self;
+    /// The filtered covariance of a steady state given its predicted one:
+    /// P - P z z' P / (z' P z + h).
+    fn filtered(&self, z: &SVector<f64, M>, h: f64) -> Self;
+    /// P z.
+    fn times(&self, z: &SVector<f64, M>) -> SVector<f64, M>;
+    /// P - g g' f (the update with gain g and innovation variance f).
+    fn update(&mut self, g: &SVector<f64, M>, f: f64);
+    /// Adds x to the variance of state i.
+    fn widen(&mut self, i: usize, x: f64);
+    /// Largest absolute entry.
+    fn amax(&self) -> f64;
+    /// Largest absolute entry of self - other.
+    fn change(&self, other: &Self) -> f64;
+}
+
+impl<const M: usize> Cov<M> for SMatrix<f64, M, M> {
+    type T = SMatrix<f64, M, M>;
+
+    fn initial(model: &StateSpace, kappa: f64) -> Self {
+        mat::<M>(&model.p1_star) + mat::<M>(&model.p1_inf) * kappa
+    }
+
+    fn system(sys: &StepSystem) -> (Self::T, Self) {
+        (mat(&sys.t), mat(&sys.rqr))
+    }
+
+    fn predict_mean(t: &Self::T, a: &SVector<f64, M>, c: &SVector<f64, M>) -> SVector<f64, M> {
+        t * a + c
+    }
+
+    fn predict(&self, t: &Self::T, q: &Self) -> Self {
+        t * self * t.transpose() + q
+    }
+
+    fn filtered(&self, z: &SVector<f64, M>, h: f64) -> Self {
+        let pz = self * z;
+        let f = z.dot(&pz) + h;
+        self - pz * pz.transpose() / f
+    }
+
+    fn times(&self, z: &SVector<f64, M>) -> SVector<f64, M> {
+        self * z
+    }
+
+    fn update(&mut self, g: &SVector<f64, M>, f: f64) {
+        *self -= g * g.transpose() * f;
+        *self = (*self + self.transpose()) * 0.5;
+    }
+
+    fn widen(&mut self, i: usize, x: f64) {
+        self[(i, i)] += x;
+    }
+
+    fn amax(&self) -> f64 {
+        SMatrix::amax(self)
+    }
+
+    fn change(&self, other: &Self) -> f64 {
+        (self - other).amax()
+    }
+}
+
+/// Predicted (or filtered) covariance of a two-state model: the three
+/// distinct entries of the symmetric matrix.
+#[derive(Debug, Clone, Copy, PartialEq)]
+struct Sym2 {
+    p00: f64,
+    p01: f64,
+    p11: f64,
+}
+
+impl Cov<2> for Sym2 {
+    /// T row by row.
+    type T = [f64; 4];
+
+    fn initial(model: &StateSpace, kappa: f64) -> Self {
+        let (ps, pi) = (&model.p1_star, &model.p1_inf);
+        Sym2 {
+            p00: ps[(0, 0)] + pi[(0, 0)] * kappa,
+            p01: 0.5 * (ps[(0, 1)] + ps[(1, 0)]) + 0.5 * (pi[(0, 1)] + pi[(1, 0)]) * kappa,
+            p11: ps[(1, 1)] + pi[(1, 1)] * kappa,
+        }
+    }
+
+    fn system(sys: &StepSystem) -> (Self::T, Self) {
+        let (t, q) = (&sys.t, &sys.rqr);
+        (
+            [t[(0, 0)], t[(0, 1)], t[(1, 0)], t[(1, 1)]],
+            Sym2 { p00: q[(0, 0)], p01: 0.5 * (q[(0, 1)] + q[(1, 0)]), p11: q[(1, 1)] },
+        )
+    }
+
+    fn predict_mean(t: &Self::T, a: &SVector<f64, 2>, c: &SVector<f64, 2>) -> SVector<f64, 2> {
+        SVector::<f64, 2>::new(t[0] * a[0] + t[1] * a[1] + c[0], t[2] * a[0] + t[3] * a[1] + c[1])
+    }
+
+    fn predict(&self, t: &Self::T, q: &Self) -> Self {
+        let [s00, s01, s11] = congruence2(*t, [self.p00, self.p01, self.p11]);
+        Sym2 { p00: s00 + q.p00, p01: s01 + q.p01, p11: s11 + q.p11 }
+    }
+
+    fn filtered(&self, z: &SVector<f64, 2>, h: f64) -> Self {
+        let pz = self.times(z);
+        let f = z[0] * pz[0] + z[1] * pz[1] + h;
+        Sym2 { p00: self.p00 - pz[0] * pz[0] / f, p01: self.p01 - pz[0] * pz[1] / f, p11: self.p11 - pz[1] * pz[1] / f }
+    }
+
+    fn times(&self, z: &SVector<f64, 2>) -> SVector<f64, 2> {
+        SVector::<f64, 2>::new(self.p00 * z[0] + self.p01 * z[1], self.p01 * z[0] + self.p11 * z[1])
+    }
+
+    fn update(&mut self, g: &SVector<f64, 2>, f: f64) {
+        self.p00 -= g[0] * g[0] * f;
+        self.p01 -= g[0] * g[1] * f;
+        self.p11 -= g[1] * g[1] * f;
+    }
+
+    fn widen(&mut self, i: usize, x: f64) {
+        if i == 0 {
+            self.p00 += x;
+        } else {
+            self.p11 += x;
+        }
+    }
+
+    fn amax(&self) -> f64 {
+        self.p00.abs().max(self.p01.abs()).max(self.p11.abs())
+    }
+
+    fn change(&self, other: &Self) -> f64 {
+        Sym2 { p00: self.p00 - other.p00, p01: self.p01 - other.p01, p11: self.p11 - other.p11 }.amax()
+    }
+}
+
+/// The pass for M states with covariance arithmetic `P`.
+fn pass<const M: usize, P: Cov<M>>(
     model: &StateSpace,
     obs: &TagObs,
     opts: &GateOptions,
@@ -81,8 +234,7 @@ fn run_m<const M: usize>(
         return out;
     }
     let mut sys = model.step_system();
-    let t1: SMatrix<f64, M, M> = mat(&sys.t);
-    let q1: SMatrix<f64, M, M> = mat(&sys.rqr);
+    let (t1, q1) = P::system(&sys);
     let c: SVector<f64, M> = SVector::from_fn(|i, _| model.c[i]);
     let z: SVector<f64, M> = SVector::from_fn(|i, _| model.z[(0, i)]);
     let d = model.d[0];
@@ -95,17 +247,17 @@ fn run_m<const M: usize>(
     };
     let kappa = 1e6 * (spread + h + 1.0);
     let mut a: SVector<f64, M> = SVector::from_fn(|i, _| model.a1[i]);
-    let mut p: SMatrix<f64, M, M> = mat::<M>(&model.p1_star) + mat::<M>(&model.p1_inf) * kappa;
+    let mut p = P::initial(model, kappa);
     let n_diffuse = model.n_diffuse();
 
     let mut updates = 0usize;
     let mut run: Vec<(usize, f64)> = Vec::new();
-    let mut snapshot: Option<(usize, SVector<f64, M>, SMatrix<f64, M, M>)> = None;
+    let mut snapshot: Option<(usize, SVector<f64, M>, P)> = None;
     let mut force_accept: Option<usize> = None;
     let mut f_seen: Vec<f64> = Vec::new();
     // Steady state: (gain, F, predicted P).
-    let mut steady: Option<(SVector<f64, M>, f64, SMatrix<f64, M, M>)> = None;
-    let mut prev_p: Option<SMatrix<f64, M, M>> = None;
+    let mut steady: Option<(SVector<f64, M>, f64, P)> = None;
+    let mut prev_p: Option<P> = None;
 
     let mut k = 0;
     let mut predicted_for = usize::MAX;
@@ -114,21 +266,19 @@ fn run_m<const M: usize>(
         if k > 0 && predicted_for != k {
             let dt = obs.dt[k - 1];
             if dt == 1.0 {
-                a = t1 * a + c;
+                a = P::predict_mean(&t1, &a, &c);
                 if steady.is_none() {
-                    p = t1 * p * t1.transpose() + q1;
+                    p = p.predict(&t1, &q1);
                 }
             } else {
                 if let Some((_, _, pp)) = steady.take() {
-                    p = pp;
                     // p held the steady predicted covariance; go back to the filtered one.
-                    p = filtered_from_predicted(&p, &z, h);
+                    p = pp.filtered(&z, h);
                 }
                 model.system_for_step(dt, &mut sys);
-                let tk: SMatrix<f64, M, M> = mat(&sys.t);
-                let qk: SMatrix<f64, M, M> = mat(&sys.rqr);
-                a = tk * a + c;
-                p = tk * p * tk.transpose() + qk;
+                let (tk, qk) = P::system(&sys);
+                a = P::predict_mean(&tk, &a, &c);
+                p = p.predict(&tk, &qk);
             }
         }
         predicted_for = k;
@@ -150,243 +300,12 @@ fn run_m<const M: usize>(
         let (f, gain) = match &steady {
             Some((g, f, _)) => (*f, *g),
             None => {
-                let pz = p * z;
+                let pz = p.times(&z);
                 let f = z.dot(&pz) + h * w;
                 (f, pz / f)
             }
         };
         let v = y - z.dot(&a) - d;
-        let e = v / f.sqrt();
-        let warm = updates >= n_diffuse + opts.min_warm;
-        if warm {
-            out.e[k] = e;
-            out.v[k] = v;
-            if f_seen.len() < 4096 {
-                f_seen.push(f);
-            }
-        }
-        let reject = warm && e.abs() > opts.spike && can_gate(k) && force_accept != Some(k);
-        if reject {
-            out.gated[k] = true;
-            let sign = e.signum();
-            if run.is_empty() {
-                let pp = match &steady {
-                    Some((_, _, pp)) => *pp,
-                    None => p,
-                };
-                snapshot = Some((k, a, pp));
-            }
-            if run.iter().all(|&(_, s)| s == sign) {
-                run.push((k, sign));
-            } else {
-                run.clear();
-                run.push((k, sign));
-                let pp = match &steady {
-                    Some((_, _, pp)) => *pp,
-                    None => p,
-                };
-                snapshot = Some((k, a, pp));
-            }
-            if run.len() >= opts.shift_run.max(1) {
-                if let (Some(level), Some((k0, a0, p0))) = (opts.level, snapshot.take()) {
-                    // Re-examine: a level shift at k0. Undo the rejections and
-                    // restart from k0 with the level's variance widened.
-                    for &(j, _) in &run {
-                        out.gated[j] = false;
-                    }
-                    let v0 = out.v[k0];
-                    out.shifts.push((k0, v0, out.e[k0]));
-                    a = a0;
-                    p = p0;
-                    p[(level, level)] += v0 * v0;
-                    steady = None;
-                    prev_p = None;
-                    run.clear();
-                    force_accept = Some(k0);
-                    predicted_for = k0;
-                    k = k0;
-                    continue;
-                }
-            }
-            // A rejected reading is not used: the prediction carries on.
-            if let Some((_, _, pp)) = steady.take() {
-                p = pp;
-            }
-            prev_p = None;
-            k += 1;
-            continue;
-        }
-        run.clear();
-        snapshot = None;
-        // Update.
-        match steady {
-            Some((g, _, _)) => a += g * v,
-            None => {
-                let p_pred = p;
-                a += gain * v;
-                p -= gain * gain.transpose() * f;
-                p = (p + p.transpose()) * 0.5;
-                updates += 1;
-                if dt_regular(obs, k) && w == 1.0 {
-                    if let Some(prev) = prev_p {
-                        let scale = p_pred.amax().max(1e-300);
-                        if (p_pred - prev).amax() <= 1e-10 * scale {
-                            steady = Some((gain, f, p_pred));
-                        }
-                    }
-                    prev_p = Some(p_pred);
-                } else {
-                    prev_p = None;
-                }
-            }
-        }
-        k += 1;
-    }
-    out.f_typical = match steady {
-        Some((_, f, _)) => f,
-        None => {
-            if f_seen.is_empty() {
-                f64::NAN
-            } else {
-                let mid = f_seen.len() / 2;
-                f_seen.select_nth_unstable_by(mid, f64::total_cmp);
-                f_seen[mid]
-            }
-        }
-    };
-    out
-}
-
-/// Predicted (or filtered) covariance of a two-state model: the three
-/// distinct entries of the symmetric matrix.
-#[derive(Debug, Clone, Copy, PartialEq)]
-struct Sym2 {
-    p00: f64,
-    p01: f64,
-    p11: f64,
-}
-
-impl Sym2 {
-    fn amax(&self) -> f64 {
-        self.p00.abs().max(self.p01.abs()).max(self.p11.abs())
-    }
-
-    /// A P A' + Q for A = [a00, a01; a10, a11] (row by row).
-    fn congruence(&self, a: [f64; 4], q: &Sym2) -> Sym2 {
-        let [s00, s01, s11] = congruence2(a, [self.p00, self.p01, self.p11]);
-        Sym2 { p00: s00 + q.p00, p01: s01 + q.p01, p11: s11 + q.p11 }
-    }
-
-    /// P z.
-    fn times(&self, z: [f64; 2]) -> [f64; 2] {
-        [self.p00 * z[0] + self.p01 * z[1], self.p01 * z[0] + self.p11 * z[1]]
-    }
-}
-
-/// T (row by row) and RQR' of a step system.
-fn system2(sys: &tagwright::ssm::model::StepSystem) -> ([f64; 4], Sym2) {
-    let (t, q) = (&sys.t, &sys.rqr);
-    (
-        [t[(0, 0)], t[(0, 1)], t[(1, 0)], t[(1, 1)]],
-        Sym2 { p00: q[(0, 0)], p01: 0.5 * (q[(0, 1)] + q[(1, 0)]), p11: q[(1, 1)] },
-    )
-}
-
-/// [`run_m`] for two states on plain numbers (the symmetric covariance as
-/// three entries): the same decisions, in a third of the operations. Level
-/// plus AR(1), the default model of most tags, has two states, and this pass
-/// runs over every reading of the window.
-fn run_2(model: &StateSpace, obs: &TagObs, opts: &GateOptions, can_gate: &dyn Fn(usize) -> bool) -> GateOutput {
-    let n = obs.len();
-    let mut out =
-        GateOutput { e: vec![f64::NAN; n], v: vec![f64::NAN; n], gated: vec![false; n], ..Default::default() };
-    if model.state_dim() != 2 || n == 0 {
-        return out;
-    }
-    let mut sys = model.step_system();
-    let (t1, q1) = system2(&sys);
-    let c = [model.c[0], model.c[1]];
-    let z = [model.z[(0, 0)], model.z[(0, 1)]];
-    let d = model.d[0];
-    let h = model.h[0];
-    let spread = {
-        let ys: Vec<f64> = obs.y.iter().copied().filter(|v| v.is_finite()).take(1000).collect();
-        let mean = ys.iter().sum::<f64>() / ys.len().max(1) as f64;
-        ys.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / ys.len().max(1) as f64
-    };
-    let kappa = 1e6 * (spread + h + 1.0);
-    let (ps, pi) = (&model.p1_star, &model.p1_inf);
-    let mut a = [model.a1[0], model.a1[1]];
-    let mut p = Sym2 {
-        p00: ps[(0, 0)] + pi[(0, 0)] * kappa,
-        p01: 0.5 * (ps[(0, 1)] + ps[(1, 0)]) + 0.5 * (pi[(0, 1)] + pi[(1, 0)]) * kappa,
-        p11: ps[(1, 1)] + pi[(1, 1)] * kappa,
-    };
-    let n_diffuse = model.n_diffuse();
-    let predict_a = |t: &[f64; 4], a: [f64; 2]| [t[0] * a[0] + t[1] * a[1] + c[0], t[2] * a[0] + t[3] * a[1] + c[1]];
-
-    let mut updates = 0usize;
-    let mut run: Vec<(usize, f64)> = Vec::new();
-    let mut snapshot: Option<(usize, [f64; 2], Sym2)> = None;
-    let mut force_accept: Option<usize> = None;
-    let mut f_seen: Vec<f64> = Vec::new();
-    // Steady state: (gain, F, predicted P).
-    let mut steady: Option<([f64; 2], f64, Sym2)> = None;
-    let mut prev_p: Option<Sym2> = None;
-
-    let mut k = 0;
-    let mut predicted_for = usize::MAX;
-    while k < n {
-        // Prediction from k-1 to k (a and p hold the filtered values at k-1).
-        if k > 0 && predicted_for != k {
-            let dt = obs.dt[k - 1];
-            if dt == 1.0 {
-                a = predict_a(&t1, a);
-                if steady.is_none() {
-                    p = p.congruence(t1, &q1);
-                }
-            } else {
-                if let Some((_, _, pp)) = steady.take() {
-                    // p held the steady predicted covariance; go back to the filtered one.
-                    let pz = pp.times(z);
-                    let f = z[0] * pz[0] + z[1] * pz[1] + h;
-                    p = Sym2 {
-                        p00: pp.p00 - pz[0] * pz[0] / f,
-                        p01: pp.p01 - pz[0] * pz[1] / f,
-                        p11: pp.p11 - pz[1] * pz[1] / f,
-                    };
-                }
-                model.system_for_step(dt, &mut sys);
-                let (tk, qk) = system2(&sys);
-                a = predict_a(&tk, a);
-                p = p.congruence(tk, &qk);
-            }
-        }
-        predicted_for = k;
-        let y = obs.y[k];
-        let w = obs.w[k];
-        if !y.is_finite() {
-            if let Some((_, _, pp)) = steady.take() {
-                p = pp;
-            }
-            prev_p = None;
-            k += 1;
-            continue;
-        }
-        if w != 1.0 {
-            if let Some((_, _, pp)) = steady.take() {
-                p = pp;
-            }
-        }
-        let (f, gain) = match &steady {
-            Some((g, f, _)) => (*f, *g),
-            None => {
-                let pz = p.times(z);
-                let f = z[0] * pz[0] + z[1] * pz[1] + h * w;
-                (f, [pz[0] / f, pz[1] / f])
-            }
-        };
-        let v = y - (z[0] * a[0] + z[1] * a[1]) - d;
         let e = v / f.sqrt();
         let warm = updates >= n_diffuse + opts.min_warm;
         if warm {
@@ -416,7 +335,8 @@ fn run_2(model: &StateSpace, obs: &TagObs, opts: &GateOptions, can_gate: &dyn Fn
             }
             if run.len() >= opts.shift_run.max(1) {
                 if let (Some(level), Some((k0, a0, p0))) = (opts.level, snapshot.take()) {
-                    // Re-examine: a level shift at k0 (see run_m).
+                    // Re-examine: a level shift at k0. Undo the rejections and
+                    // restart from k0 with the level's variance widened.
                     for &(j, _) in &run {
                         out.gated[j] = false;
                     }
@@ -424,11 +344,7 @@ fn run_2(model: &StateSpace, obs: &TagObs, opts: &GateOptions, can_gate: &dyn Fn
                     out.shifts.push((k0, v0, out.e[k0]));
                     a = a0;
                     p = p0;
-                    if level == 0 {
-                        p.p00 += v0 * v0;
-                    } else {
-                        p.p11 += v0 * v0;
-                    }
+                    p.widen(level, v0 * v0);
                     steady = None;
                     prev_p = None;
                     run.clear();
@@ -450,24 +366,16 @@ fn run_2(model: &StateSpace, obs: &TagObs, opts: &GateOptions, can_gate: &dyn Fn
         snapshot = None;
         // Update.
         match steady {
-            Some((g, _, _)) => {
-                a[0] += g[0] * v;
-                a[1] += g[1] * v;
-            }
+            Some((g, _, _)) => a += g * v,
             None => {
                 let p_pred = p;
-                a[0] += gain[0] * v;
-                a[1] += gain[1] * v;
-                p.p00 -= gain[0] * gain[0] * f;
-                p.p01 -= gain[0] * gain[1] * f;
-                p.p11 -= gain[1] * gain[1] * f;
+                a += gain * v;
+                p.update(&gain, f);
                 updates += 1;
                 if dt_regular(obs, k) && w == 1.0 {
                     if let Some(prev) = prev_p {
                         let scale = p_pred.amax().max(1e-300);
-                        let change =
-                            Sym2 { p00: p_pred.p00 - prev.p00, p01: p_pred.p01 - prev.p01, p11: p_pred.p11 - prev.p11 };
-                        if change.amax() <= 1e-10 * scale {
+                        if p_pred.change(&prev) <= 1e-10 * scale {
                             steady = Some((gain, f, p_pred));
                         }
                     }
@@ -497,14 +405,6 @@ fn run_2(model: &StateSpace, obs: &TagObs, opts: &GateOptions, can_gate: &dyn Fn
 /// True when the step into k and out of k are one period.
 fn dt_regular(obs: &TagObs, k: usize) -> bool {
     obs.dt[k] == 1.0 && (k == 0 || obs.dt[k - 1] == 1.0)
-}
-
-/// The filtered covariance of a steady state given its predicted one:
-/// P - P z z' P / (z' P z + h).
-fn filtered_from_predicted<const M: usize>(p: &SMatrix<f64, M, M>, z: &SVector<f64, M>, h: f64) -> SMatrix<f64, M, M> {
-    let pz = p * z;
-    let f = z.dot(&pz) + h;
-    p - pz * pz.transpose() / f
 }
 
 #[cfg(test)]
@@ -619,8 +519,8 @@ mod tests {
         let spec: ModelSpec = "local-level+arma(1,0)".parse().unwrap();
         let model = spec.build(&[0.01, 1e-6, 0.9, 0.0025]).unwrap();
         let opts = GateOptions { spike: 5.0, shift_run: 3, level: Some(0), min_warm: 2 };
-        let plain = run_2(&model, &o, &opts, &|_| true);
-        let matrix = run_m::<2>(&model, &o, &opts, &|_| true);
+        let plain = pass::<2, Sym2>(&model, &o, &opts, &|_| true);
+        let matrix = pass::<2, SMatrix<f64, 2, 2>>(&model, &o, &opts, &|_| true);
         assert_eq!(plain.gated, matrix.gated);
         assert_eq!(plain.shifts.len(), matrix.shifts.len());
         assert!(plain.shifts.iter().any(|s| s.0 == 2500), "{:?}", plain.shifts);
