@@ -290,29 +290,37 @@ impl TagTable {
             |i: usize| (self.status[i] != Status::Ok || self.fault[i].is_some()) && self.decided_by[i] == NO_STEP;
         // Unchanged rows are the common case: look closer only in a block
         // that has a changed one.
-        let changed = |lo: usize| {
-            let hi = (lo + CHECK_BLOCK).min(n);
-            let st = self.status[lo..hi].iter().fold(false, |any, &s| any | (s != Status::Ok));
-            st | self.fault[lo..hi].iter().fold(false, |any, f| any | f.is_some())
-        };
-        for lo in (0..n).step_by(CHECK_BLOCK).filter(|&lo| changed(lo)) {
-            if let Some(i) = (lo..(lo + CHECK_BLOCK).min(n)).find(|&i| undecided(i)) {
+        for block in blocks(n).filter(|b| self.any_changed(b.clone())) {
+            if let Some(i) = block.into_iter().find(|&i| undecided(i)) {
                 return Err(format!("tag {}: row {i} changed without a deciding step", self.tag));
             }
         }
         Ok(())
     }
+
+    /// True when a row of `rows` has a status other than `ok` or a fault;
+    /// scanned without early exit, so it vectorises.
+    pub fn any_changed(&self, rows: std::ops::Range<usize>) -> bool {
+        let st = self.status[rows.clone()].iter().fold(false, |any, &s| any | (s != Status::Ok));
+        st | self.fault[rows].iter().fold(false, |any, f| any | f.is_some())
+    }
 }
 
-/// Rows per block of the table checks (a block is scanned without early
-/// exit, which the compiler vectorises; the exact row is then looked up).
-const CHECK_BLOCK: usize = 256;
+/// Rows per block of the scans over a table that skip unchanged blocks (a
+/// block is scanned without early exit, which the compiler vectorises; the
+/// exact row is then looked up).
+pub const SCAN_BLOCK: usize = 256;
+
+/// Rows 0..n in blocks of [`SCAN_BLOCK`] (the last one shorter).
+pub fn blocks(n: usize) -> impl Iterator<Item = std::ops::Range<usize>> {
+    (0..n).step_by(SCAN_BLOCK).map(move |lo| lo..(lo + SCAN_BLOCK).min(n))
+}
 
 /// The first row whose time is not greater than the one before, if any.
 pub fn first_not_increasing(ts: &[i64]) -> Option<usize> {
     let mut lo = 0;
     while lo + 1 < ts.len() {
-        let hi = (lo + CHECK_BLOCK + 1).min(ts.len());
+        let hi = (lo + SCAN_BLOCK + 1).min(ts.len());
         let block = &ts[lo..hi];
         if block.windows(2).fold(false, |bad, w| bad | (w[1] <= w[0])) {
             return (lo + 1..hi).find(|&i| ts[i] <= ts[i - 1]);
@@ -347,7 +355,7 @@ mod tests {
     /// the block boundaries.
     #[test]
     fn checks_name_the_exact_row() {
-        let n = 3 * CHECK_BLOCK + 7;
+        let n = 3 * SCAN_BLOCK + 7;
         let s = TagSeries {
             tag: "FT-1".into(),
             ts_us: (0..n as i64).collect(),
@@ -358,7 +366,7 @@ mod tests {
         let clean = TagTable::from_series(&s, 1, Sampling::Regular);
         assert_eq!(first_not_increasing(&clean.ts_us), None);
         clean.check().unwrap();
-        for bad in [1, CHECK_BLOCK - 1, CHECK_BLOCK, CHECK_BLOCK + 1, 2 * CHECK_BLOCK, n - 1] {
+        for bad in [1, SCAN_BLOCK - 1, SCAN_BLOCK, SCAN_BLOCK + 1, 2 * SCAN_BLOCK, n - 1] {
             let mut t = clean.clone();
             t.ts_us[bad] = t.ts_us[bad - 1];
             assert_eq!(first_not_increasing(&t.ts_us), Some(bad));

@@ -7,7 +7,7 @@
 
 use serde::Serialize;
 
-use crate::series::{Fault, Status, TagTable};
+use crate::series::{Fault, Status, TagTable, SCAN_BLOCK};
 
 /// One contiguous change.
 #[derive(Debug, Clone, PartialEq, Serialize)]
@@ -31,9 +31,6 @@ pub struct Event {
     pub rows: usize,
 }
 
-/// Rows per block skipped at once when unchanged.
-const SKIP_BLOCK: usize = 256;
-
 fn key(t: &TagTable, i: usize) -> Option<(Status, Option<Fault>, u16)> {
     (t.status[i] != Status::Ok || t.fault[i].is_some()).then(|| (t.status[i], t.fault[i], t.decided_by[i]))
 }
@@ -47,10 +44,8 @@ pub fn events(t: &TagTable, step_names: &[String]) -> Vec<Event> {
         let Some(k) = key(t, i) else {
             // Skip a block of unchanged rows (the common case) at once; the
             // scan has no branch, so it vectorises.
-            let hi = (i + SKIP_BLOCK).min(n);
-            let changed = t.status[i..hi].iter().fold(false, |any, &s| any | (s != Status::Ok))
-                | t.fault[i..hi].iter().fold(false, |any, f| any | f.is_some());
-            i = if changed { i + 1 } else { hi };
+            let hi = (i + SCAN_BLOCK).min(n);
+            i = if t.any_changed(i..hi) { i + 1 } else { hi };
             continue;
         };
         let start = i;

@@ -485,15 +485,12 @@ fn write_result(
     let mut faults: BTreeMap<&'static str, u64> = BTreeMap::new();
     // Blocks of unchanged rows (the common case) are counted whole.
     let t = &r.table;
-    for lo in (0..t.len()).step_by(COUNT_BLOCK) {
-        let hi = (lo + COUNT_BLOCK).min(t.len());
-        let changed = t.status[lo..hi].iter().fold(false, |any, &s| any | (s != Status::Ok))
-            | t.fault[lo..hi].iter().fold(false, |any, f| any | f.is_some());
-        if !changed {
-            by_status[Status::Ok as usize] += (hi - lo) as u64;
+    for block in crate::series::blocks(t.len()) {
+        if !t.any_changed(block.clone()) {
+            by_status[Status::Ok as usize] += block.len() as u64;
             continue;
         }
-        for i in lo..hi {
+        for i in block {
             by_status[t.status[i] as usize] += 1;
             if let Some(f) = t.fault[i] {
                 *faults.entry(f.as_str()).or_default() += 1;
@@ -518,9 +515,6 @@ fn write_result(
     state_out.insert(r.table.tag.clone(), r.state);
     writer.write_tag_owned(r.table)
 }
-
-/// Rows per block of the result counts.
-const COUNT_BLOCK: usize = 256;
 
 /// Statuses in output order, for summaries.
 pub fn status_names() -> [&'static str; 4] {

@@ -16,10 +16,7 @@ use std::sync::Arc;
 use serde::Deserialize;
 
 use super::{parse_params, Step, StepContext, StepError, TagWork};
-use crate::series::{Fault, Quality, Status, TagTable};
-
-/// Rows per block of the steps' scans.
-const SCAN_BLOCK: usize = 256;
+use crate::series::{blocks, Fault, Quality, Status, TagTable};
 
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize)]
 #[serde(rename_all = "snake_case")]
@@ -62,12 +59,11 @@ impl Step for QualityStep {
             };
             // Most blocks hold no bad reading: they are scanned without
             // branches (vectorised) and skipped.
-            for lo in (0..t.len()).step_by(SCAN_BLOCK) {
-                let hi = (lo + SCAN_BLOCK).min(t.len());
-                if !(lo..hi).fold(false, |any, i| any | bad(t, i)) {
+            for block in blocks(t.len()) {
+                if !block.clone().fold(false, |any, i| any | bad(t, i)) {
                     continue;
                 }
-                for i in lo..hi {
+                for i in block {
                     if t.status[i] == Status::Ok && t.fault[i].is_none() && bad(t, i) {
                         t.decide(i, Status::Rejected, Some(Fault::BadQuality), ctx.index, f64::NAN, f64::NAN);
                         t.value[i] = f64::NAN;
@@ -138,12 +134,11 @@ impl Step for RangeStep {
             let t = &mut work.table;
             // A NaN reading compares false both ways, so it is never out of range.
             let out = |x: f64| (x < lo) | (x > hi);
-            for lo_i in (0..t.len()).step_by(SCAN_BLOCK) {
-                let hi_i = (lo_i + SCAN_BLOCK).min(t.len());
-                if !t.raw[lo_i..hi_i].iter().fold(false, |any, &x| any | out(x)) {
+            for block in blocks(t.len()) {
+                if !t.raw[block.clone()].iter().fold(false, |any, &x| any | out(x)) {
                     continue;
                 }
-                for i in lo_i..hi_i {
+                for i in block {
                     if t.status[i] != Status::Ok || t.fault[i].is_some() || !t.raw[i].is_finite() {
                         continue;
                     }
