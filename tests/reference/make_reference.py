@@ -69,6 +69,15 @@ def write_json(path, obj):
         f.write("\n")
 
 
+def named_mle(best, names, fitdesc):
+    """The fitted parameters under our names (in the model's parameter
+    order), the log-likelihood and how the optimum was found."""
+    out = {name: float(v) for name, v in zip(names, best.params)}
+    out["loglik"] = float(best.llf)
+    out["optimiser"] = fitdesc
+    return out
+
+
 def tight_fit(model, start_params=None):
     """Maximise the statsmodels likelihood tightly.
 
@@ -403,12 +412,7 @@ def make_ll_irregular():
         "smoothed_var": flist(res.smoothed_state_cov[0, 0, times]),
     }
     best, fitdesc = tight_fit(mod)
-    mle = {
-        "sigma2_eps": float(best.params[0]),
-        "sigma2_eta": float(best.params[1]),
-        "loglik": float(best.llf),
-        "optimiser": fitdesc,
-    }
+    mle = named_mle(best, ["sigma2_eps", "sigma2_eta"], fitdesc)
     return {
         "source": (
             f"{SM} UnobservedComponents(y_grid, 'local level', "
@@ -534,14 +538,8 @@ def make_llar():
          LLAR_TRUE["sigma2_ar"], phi]
     fixed = {"loglik": float(mod.loglike(p))}
     best, fitdesc = tight_fit(mod, start_params=p)
-    mle = {
-        "sigma2_eps": float(best.params[0]),
-        "sigma2_eta": float(best.params[1]),
-        "sigma2_ar": float(best.params[2]),
-        "phi": float(best.params[3]),
-        "loglik": float(best.llf),
-        "optimiser": fitdesc,
-    }
+    mle = named_mle(best, ["sigma2_eps", "sigma2_eta", "sigma2_ar", "phi"],
+                    fitdesc)
     return {
         "source": (
             f"{SM} UnobservedComponents(y, level='llevel', autoregressive=1, "
