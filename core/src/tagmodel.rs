@@ -510,20 +510,25 @@ impl Fitted {
         let o = Observations { y, ..obs.observations() };
         FILTER_WORK.with(|work| {
             let filt = &mut *work.borrow_mut();
+            // The smoother reads the predicted states, not the filtered ones.
+            filt.skip_filtered = true;
             ssm::filter_into(&self.model, &o, &FilterOptions::default(), filt)
                 .map_err(|e| ModelError(e.to_string()))?;
             let keep_del = y_all.is_some() && o.p == 1;
-            let mut sm = SmootherOutput { keep_aux, keep_del, ..Default::default() };
+            // Only the signal, its variance and the auxiliary residuals are
+            // read here, so the smoother keeps just those (`lean`).
+            let mut sm = SmootherOutput { keep_aux, keep_del, lean: true, ..Default::default() };
             ssm::smooth_into(&self.model, &o, filt, &mut sm);
             let n = obs.len();
             let (mut mean, mut sd) = (Vec::new(), Vec::new());
             let outlier = match y_all {
                 Some(y_all) => {
-                    SIGNAL_MEMO.with(|memo| memo.borrow_mut().keep(self, &o, &sm));
-                    self.deletion_residuals(obs, filt, &sm, y_all)
+                    let outlier = self.deletion_residuals(obs, filt, &sm, y_all);
+                    SIGNAL_MEMO.with(|memo| memo.borrow_mut().keep(self, &o, &mut sm));
+                    outlier
                 }
                 None => {
-                    self.signal_into(&sm, n, &mut mean, &mut sd);
+                    self.signal_into(&mut sm, n, &mut mean, &mut sd);
                     Vec::new()
                 }
             };
@@ -531,22 +536,16 @@ impl Fitted {
         })
     }
 
-    /// Appends the smoothed signal z a_t + d and its standard deviation at
-    /// the first `n` grid points of `sm`.
-    fn signal_into(&self, sm: &SmootherOutput, n: usize, mean: &mut Vec<f64>, sd: &mut Vec<f64>) {
-        let (z, d) = self.signal_row();
-        let m = z.len();
-        mean.reserve_exact(n);
-        sd.reserve_exact(n);
-        for t in 0..n {
-            mean.push(ssm::signal_of(&z, d, &sm.state[t * m..(t + 1) * m]));
-            sd.push(ssm::signal_var_of(&z, &sm.cov[t * m * m..(t + 1) * m * m]).sqrt());
-        }
-    }
-
-    /// The first row of Z and d: the signal is z a + d.
-    fn signal_row(&self) -> (Vec<f64>, f64) {
-        (self.model.z.row(0).iter().copied().collect(), self.model.d[0])
+    /// Sets `mean` and `sd` to the smoothed signal z a_t + d and its
+    /// standard deviation at the first `n` grid points of `sm` (a lean
+    /// pass: its signal arrays are taken, so `sm` no longer holds them).
+    fn signal_into(&self, sm: &mut SmootherOutput, n: usize, mean: &mut Vec<f64>, sd: &mut Vec<f64>) {
+        debug_assert!(sm.lean && sm.sig_mean.len() >= n);
+        *mean = std::mem::take(&mut sm.sig_mean);
+        mean.truncate(n);
+        *sd = std::mem::take(&mut sm.sig_var);
+        sd.truncate(n);
+        sd.iter_mut().for_each(|v| *v = v.sqrt());
     }
 
     /// Standardised deletion residuals (see [`Fitted::smooth_with_outliers`]):
@@ -561,8 +560,6 @@ impl Fitted {
     ) -> Vec<f64> {
         let n = obs.len();
         let h = self.model.h[0];
-        let (z, d) = self.signal_row();
-        let m = z.len();
         let mut out = vec![f64::NAN; n];
         for (t, out_t) in out.iter_mut().enumerate().skip(filt.diffuse_end) {
             let Some(&y) = y_all.get(t) else { break };
@@ -573,8 +570,8 @@ impl Fitted {
                 *out_t = sm.del[t];
                 continue;
             }
-            let mean = ssm::signal_of(&z, d, &sm.state[t * m..(t + 1) * m]);
-            let var = ssm::signal_var_of(&z, &sm.cov[t * m * m..(t + 1) * m * m]) + h * obs.w[t];
+            let mean = sm.sig_mean[t];
+            let var = sm.sig_var[t] + h * obs.w[t];
             if var > 0.0 {
                 *out_t = (y - mean) / var.sqrt();
             }
@@ -618,14 +615,14 @@ impl SignalMemo {
 
     /// Keeps the signal of a pass on `o` (a univariate grid with its time
     /// steps and variance multipliers, as [`TagObs::observations`] gives).
-    fn keep(&mut self, f: &Fitted, o: &Observations, sm: &SmootherOutput) {
+    fn keep(&mut self, f: &Fitted, o: &Observations, sm: &mut SmootherOutput) {
         self.clear();
         let (Some(dt), Some(w)) = (o.dt, o.h_scale) else { return };
         if o.p != 1 {
             return;
         }
-        let (m, n) = (f.model.state_dim(), o.len());
-        if sm.state.len() < n * m || sm.cov.len() < n * m * m {
+        let n = o.len();
+        if !sm.lean || sm.sig_mean.len() < n || sm.sig_var.len() < n {
             return;
         }
         self.spec = f.spec.to_string();

@@ -211,6 +211,10 @@ pub struct FilterOutput {
     pub p_inf_pred: Vec<f64>,
     /// Diffuse updates, in order.
     pub diffuse: Vec<DiffuseElem>,
+    /// Set before a stored run to leave `a_filt` and `p_filt` empty: a
+    /// caller that only smooths does not read them (6 of the 16 numbers a
+    /// two-state run stores per time). Kept from run to run.
+    pub skip_filtered: bool,
 }
 
 impl FilterOutput {
@@ -233,14 +237,16 @@ impl FilterOutput {
             kind: std::mem::take(&mut self.kind),
             p_inf_pred: std::mem::take(&mut self.p_inf_pred),
             diffuse: std::mem::take(&mut self.diffuse),
+            skip_filtered: self.skip_filtered,
             ..Default::default()
         };
         let (len_nm, len_nmm, len_np) = if store { (n * m, n * m * m, n * p) } else { (0, 0, 0) };
+        let filtered = if self.skip_filtered { 0 } else { 1 };
         for (v, len) in [
             (&mut self.a_pred, len_nm),
             (&mut self.p_pred, len_nmm),
-            (&mut self.a_filt, len_nm),
-            (&mut self.p_filt, len_nmm),
+            (&mut self.a_filt, len_nm * filtered),
+            (&mut self.p_filt, len_nmm * filtered),
             (&mut self.v, len_np),
             (&mut self.f, len_np),
             (&mut self.k, len_np * m),
@@ -250,6 +256,11 @@ impl FilterOutput {
         self.kind.resize(len_np, ElemKind::Missing);
         self.p_inf_pred.clear();
         self.diffuse.clear();
+    }
+
+    /// True if the filtered states and covariances are to be stored.
+    pub(crate) fn keeps_filtered(&self, store: bool) -> bool {
+        store && !self.skip_filtered
     }
 
     /// True if states and covariances were stored.
@@ -424,6 +435,7 @@ fn run_until<D: Dim>(
     let n = obs.len();
     let store = opts.store;
     out.reset(n, p, m, store, path);
+    let keep_filt = out.keeps_filtered(store);
 
     let zrows: Vec<OVector<f64, D>> = (0..p).map(|i| ovec(dim, model.z.row(i).iter().cloned())).collect();
     let c = ovec(dim, model.c.iter().cloned());
@@ -547,6 +559,12 @@ fn run_until<D: Dim>(
                 // avoids per-call overhead (a copy of two numbers is a libc call).
                 let av = a.as_mut_slice();
                 let v = y - zs.iter().zip(av.iter()).map(|(z, a)| z * a).sum::<f64>() - d0;
+                if keep_filt {
+                    for ((o, aj), gj) in out.a_filt[t * m..(t + 1) * m].iter_mut().zip(av.iter()).zip(gs) {
+                        *o = aj + gj * v;
+                    }
+                    out.p_filt[t * m * m..(t + 1) * m * m].copy_from_slice(st_pfilt.as_slice());
+                }
                 if store {
                     out.a_pred[t * m..(t + 1) * m].copy_from_slice(av);
                     out.p_pred[t * m * m..(t + 1) * m * m].copy_from_slice(ps.as_slice());
@@ -554,10 +572,6 @@ fn run_until<D: Dim>(
                     out.f[t] = st_f;
                     out.k[t * m..(t + 1) * m].copy_from_slice(st_k.as_slice());
                     out.kind[t] = ElemKind::Regular;
-                    for ((o, aj), gj) in out.a_filt[t * m..(t + 1) * m].iter_mut().zip(av.iter()).zip(gs) {
-                        *o = aj + gj * v;
-                    }
-                    out.p_filt[t * m * m..(t + 1) * m * m].copy_from_slice(st_pfilt.as_slice());
                 }
                 let tv = tmpv.as_mut_slice();
                 for (i, ti) in tv.iter_mut().enumerate() {
@@ -678,7 +692,7 @@ fn run_until<D: Dim>(
             pi.fill(0.0);
             out.diffuse_end = t + 1;
         }
-        if store {
+        if keep_filt {
             out.a_filt[t * m..(t + 1) * m].copy_from_slice(a.as_slice());
             let pf = if steady { &st_pfilt } else { &ps };
             out.p_filt[t * m * m..(t + 1) * m * m].copy_from_slice(pf.as_slice());
@@ -805,6 +819,7 @@ fn run_two_states<const UNIT_Z: bool>(
     let TwoStateRefs { a, p, z, c, sys, cur_dt, logs, out } = s;
     let n = obs.len();
     let store = opts.store;
+    let keep_filt = out.keeps_filtered(store);
     let allow_steady = opts.steady_tol > 0.0;
     let (z0, z1, d0, h0) = (z[0], z[1], model.d[0], model.h[0]);
     let (c0, c1) = (c[0], c[1]);
@@ -873,7 +888,7 @@ fn run_two_states<const UNIT_Z: bool>(
                 }
             }
         }
-        if store {
+        if keep_filt {
             out.a_filt[2 * t] = a0;
             out.a_filt[2 * t + 1] = a1;
             out.p_filt[4 * t..4 * t + 4].copy_from_slice(&[p00, p01, p01, p11]);

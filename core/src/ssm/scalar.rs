@@ -13,6 +13,7 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
     let n = obs.len();
     let store = opts.store;
     out.reset(n, 1, 1, store, Path::Scalar);
+    let keep_filt = out.keeps_filtered(store);
     let (z, d, h, c) = (model.z[(0, 0)], model.d[0], model.h[0], model.c[0]);
     let mut sys = model.step_system();
     let (mut tr, mut q, mut cur_dt) = (sys.t[(0, 0)], sys.rqr[(0, 0)], 1.0);
@@ -50,6 +51,8 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
                     out.f[t] = st_f;
                     out.k[t] = st_k;
                     out.kind[t] = ElemKind::Regular;
+                }
+                if keep_filt {
                     out.a_filt[t] = a + gain * v;
                     out.p_filt[t] = st_pf;
                 }
@@ -138,7 +141,7 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
             pi = 0.0;
             out.diffuse_end = t + 1;
         }
-        if store {
+        if keep_filt {
             out.a_filt[t] = a;
             out.p_filt[t] = if steady { st_pf } else { ps };
         }

@@ -66,6 +66,19 @@ pub struct SmootherOutput {
     /// it). Computed for regular elements after the diffuse phase; NaN
     /// elsewhere.
     pub del: Vec<f64>,
+    /// Set before smoothing (one-element models) to keep only what callers
+    /// of the signal read, instead of `state`, `cov`, `r` and `n_cum` (which
+    /// stay empty): `sig_mean`, `sig_var` and, with `keep_aux`, `aux`. The
+    /// values are the same as those computed from the full arrays; a long
+    /// window then stores 2 to 4 numbers per time instead of 13.
+    pub lean: bool,
+    /// With `lean`: the smoothed signal z a_hat_t + d (n).
+    pub sig_mean: Vec<f64>,
+    /// With `lean`: its variance z V_t z', not below zero (n).
+    pub sig_var: Vec<f64>,
+    /// With `lean` and `keep_aux`: r_j / sqrt(N_jj) at index t (n x m; NaN
+    /// where N_jj is not positive), which [`SmootherOutput::state_aux`] reads.
+    pub aux: Vec<f64>,
 }
 
 impl SmootherOutput {
@@ -73,11 +86,15 @@ impl SmootherOutput {
     pub(crate) fn reset(&mut self, n: usize, m: usize) {
         self.n = n;
         self.m = m;
-        self.state.resize(n * m, 0.0);
-        self.cov.resize(n * m * m, 0.0);
         let aux = if self.keep_aux { n * m } else { 0 };
-        self.r.resize(aux, 0.0);
-        self.n_cum.resize(aux * m, 0.0);
+        let (full, lean) = if self.lean { (0, n) } else { (n, 0) };
+        self.state.resize(full * m, 0.0);
+        self.cov.resize(full * m * m, 0.0);
+        self.r.resize(if self.lean { 0 } else { aux }, 0.0);
+        self.n_cum.resize(if self.lean { 0 } else { aux * m }, 0.0);
+        self.sig_mean.resize(lean, 0.0);
+        self.sig_var.resize(lean, 0.0);
+        self.aux.resize(if self.lean { aux } else { 0 }, 0.0);
         self.del.clear();
         if self.keep_del {
             self.del.resize(n, f64::NAN);
@@ -91,9 +108,12 @@ impl SmootherOutput {
     /// or where N_jj is 0.
     pub fn state_aux(&self, t: usize, j: usize) -> f64 {
         let m = self.m;
+        if self.lean {
+            return if j < m { self.aux.get((t + 1) * m + j).copied().unwrap_or(f64::NAN) } else { f64::NAN };
+        }
         let i = (t + 1) * m + j;
         match (self.r.get(i), self.n_cum.get((t + 1) * m * m + j * m + j)) {
-            (Some(&r), Some(&n)) if n > 0.0 => r / n.sqrt(),
+            (Some(&r), Some(&n)) => aux_of(r, n),
             _ => f64::NAN,
         }
     }
@@ -101,6 +121,9 @@ impl SmootherOutput {
     /// Smoothed signal z a_hat_t + d for observation element i of the model.
     pub fn signal(&self, model: &StateSpace, t: usize, i: usize) -> f64 {
         let m = self.m;
+        if self.lean && i == 0 {
+            return self.sig_mean[t];
+        }
         let z: Vec<f64> = model.z.row(i).iter().copied().collect();
         signal_of(&z, model.d[i], &self.state[t * m..(t + 1) * m])
     }
@@ -108,6 +131,9 @@ impl SmootherOutput {
     /// Variance of the smoothed signal, z V_t z'.
     pub fn signal_var(&self, model: &StateSpace, t: usize, i: usize) -> f64 {
         let m = self.m;
+        if self.lean && i == 0 {
+            return self.sig_var[t];
+        }
         let z: Vec<f64> = model.z.row(i).iter().copied().collect();
         signal_var_of(&z, &self.cov[t * m * m..(t + 1) * m * m])
     }
@@ -145,6 +171,12 @@ pub fn smooth(model: &StateSpace, obs: &Observations, filt: &FilterOutput) -> Sm
 pub fn smooth_into(model: &StateSpace, obs: &Observations, filt: &FilterOutput, out: &mut SmootherOutput) {
     assert!(filt.is_stored() || filt.n == 0, "smoothing needs a filter run with store = true");
     let m = model.state_dim();
+    // The matrix paths keep the lean arrays as they go; the scalar path
+    // fills the full ones, which are then reduced. (`lean` is for
+    // one-element models; with more elements the full arrays are kept.)
+    let lean = out.lean && filt.p == 1;
+    let reduce = lean && filt.path == Path::Scalar;
+    out.lean = lean && !reduce;
     match filt.path {
         Path::Scalar => scalar::smooth(model, obs, filt, out),
         Path::Fixed => match m {
@@ -155,6 +187,42 @@ pub fn smooth_into(model: &StateSpace, obs: &Observations, filt: &FilterOutput, 
             _ => run(Dyn(m), model, obs, filt, out),
         },
         _ => run(Dyn(m), model, obs, filt, out),
+    }
+    if reduce {
+        out.reduce_to_lean(model);
+    }
+}
+
+impl SmootherOutput {
+    /// Computes the lean arrays from the full ones and empties those.
+    fn reduce_to_lean(&mut self, model: &StateSpace) {
+        let (n, m) = (self.n, self.m);
+        let z: Vec<f64> = model.z.row(0).iter().copied().collect();
+        let d = model.d[0];
+        self.sig_mean = (0..n).map(|t| signal_of(&z, d, &self.state[t * m..(t + 1) * m])).collect();
+        self.sig_var = (0..n).map(|t| signal_var_of(&z, &self.cov[t * m * m..(t + 1) * m * m])).collect();
+        self.aux.clear();
+        if self.keep_aux {
+            for t in 0..n {
+                for j in 0..m {
+                    self.aux.push(aux_of(self.r[t * m + j], self.n_cum[t * m * m + j * m + j]));
+                }
+            }
+        }
+        for v in [&mut self.state, &mut self.cov, &mut self.r, &mut self.n_cum] {
+            v.clear();
+        }
+        self.lean = true;
+    }
+}
+
+/// r_j / sqrt(N_jj), NaN where N_jj is not positive (an auxiliary residual).
+#[inline]
+fn aux_of(r: f64, n: f64) -> f64 {
+    if n > 0.0 {
+        r / n.sqrt()
+    } else {
+        f64::NAN
     }
 }
 
@@ -177,6 +245,9 @@ where
     let (n, p, m) = (filt.n, filt.p, filt.m);
     out.reset(n, m);
     let keep_del = out.keep_del && p == 1;
+    let lean = out.lean;
+    let z_sig: Vec<f64> = model.z.row(0).iter().copied().collect();
+    let d_sig = model.d[0];
     let zrows: Vec<OVector<f64, D>> = (0..p).map(|i| ovec(dim, model.z.row(i).iter().cloned())).collect();
     let mut sys = model.step_system();
     let mut tt = omat(dim, &sys.t);
@@ -277,12 +348,22 @@ where
             v -= &pinf * &n2 * &pinf;
         }
         tidy(&mut v);
-        if out.keep_aux {
-            out.r[t * m..(t + 1) * m].copy_from_slice(r0.as_slice());
-            out.n_cum[t * m * m..(t + 1) * m * m].copy_from_slice(n0.as_slice());
+        if lean {
+            if out.keep_aux {
+                for j in 0..m {
+                    out.aux[t * m + j] = aux_of(r0[j], n0[(j, j)]);
+                }
+            }
+            out.sig_mean[t] = signal_of(&z_sig, d_sig, a.as_slice());
+            out.sig_var[t] = signal_var_of(&z_sig, v.as_slice());
+        } else {
+            if out.keep_aux {
+                out.r[t * m..(t + 1) * m].copy_from_slice(r0.as_slice());
+                out.n_cum[t * m * m..(t + 1) * m * m].copy_from_slice(n0.as_slice());
+            }
+            out.state[t * m..(t + 1) * m].copy_from_slice(a.as_slice());
+            out.cov[t * m * m..(t + 1) * m * m].copy_from_slice(v.as_slice());
         }
-        out.state[t * m..(t + 1) * m].copy_from_slice(a.as_slice());
-        out.cov[t * m * m..(t + 1) * m * m].copy_from_slice(v.as_slice());
         // Step back through the transition T_{t-1}: r <- T'r, N <- T'NT.
         if t > 0 {
             let dt = obs.step(t - 1);
@@ -331,6 +412,8 @@ fn run_two_states(
     let (mut r0, mut r1) = (0.0, 0.0);
     let (mut n00, mut n01, mut n11) = (0.0, 0.0, 0.0);
     let keep_aux = out.keep_aux;
+    let lean = out.lean;
+    let d_sig = model.d[0];
     for t in (filt.diffuse_end..n).rev() {
         if filt.kind[t] == ElemKind::Regular {
             let (v, f) = (filt.v[t], filt.f[t]);
@@ -357,8 +440,8 @@ fn run_two_states(
         let pm = &filt.p_pred[4 * t..4 * t + 4];
         let (p00, p10, p01, p11) = (pm[0], pm[1], pm[2], pm[3]);
         let (a0, a1) = (filt.a_pred[2 * t], filt.a_pred[2 * t + 1]);
-        out.state[2 * t] = a0 + p00 * r0 + p01 * r1;
-        out.state[2 * t + 1] = a1 + p10 * r0 + p11 * r1;
+        let s0 = a0 + p00 * r0 + p01 * r1;
+        let s1 = a1 + p10 * r0 + p11 * r1;
         let m00 = n00 * p00 + n01 * p10;
         let m01 = n00 * p01 + n01 * p11;
         let m10 = n01 * p00 + n11 * p10;
@@ -368,11 +451,23 @@ fn run_two_states(
         let v10 = p10 - (p10 * m00 + p11 * m10);
         let v11 = p11 - (p10 * m01 + p11 * m11);
         let off = 0.5 * (v01 + v10);
-        out.cov[4 * t..4 * t + 4].copy_from_slice(&[clear_negative(v00), off, off, clear_negative(v11)]);
-        if keep_aux {
-            out.r[2 * t] = r0;
-            out.r[2 * t + 1] = r1;
-            out.n_cum[4 * t..4 * t + 4].copy_from_slice(&[n00, n01, n01, n11]);
+        let cov = [clear_negative(v00), off, off, clear_negative(v11)];
+        if lean {
+            out.sig_mean[t] = signal_of(&[z0, z1], d_sig, &[s0, s1]);
+            out.sig_var[t] = signal_var_of(&[z0, z1], &cov);
+            if keep_aux {
+                out.aux[2 * t] = aux_of(r0, n00);
+                out.aux[2 * t + 1] = aux_of(r1, n11);
+            }
+        } else {
+            out.state[2 * t] = s0;
+            out.state[2 * t + 1] = s1;
+            out.cov[4 * t..4 * t + 4].copy_from_slice(&cov);
+            if keep_aux {
+                out.r[2 * t] = r0;
+                out.r[2 * t + 1] = r1;
+                out.n_cum[4 * t..4 * t + 4].copy_from_slice(&[n00, n01, n01, n11]);
+            }
         }
         // Step back through T_{t-1}: r <- T'r, N <- T'NT.
         if t > 0 {

@@ -388,3 +388,97 @@ fn two_state_loop_matches_the_matrix_code() {
         }
     }
 }
+
+#[test]
+fn the_lean_smoother_keeps_exactly_what_the_full_one_gives() {
+    // One model per path: scalar (local level), two states (level + AR(1),
+    // the plain-number loop after the diffuse phase) and three states
+    // (level + AR(2), the matrix loop);
+    // missing and uncertain readings and gaps, with and without the
+    // steady state. The lean arrays must equal, bit for bit, the signal,
+    // its variance and the auxiliary residuals computed from the full ones.
+    let cases: [(&str, Vec<f64>); 3] = [
+        ("local-level", vec![4.0, 0.3]),
+        ("local-level+arma(1,0)", vec![0.04, 0.001, 0.95, 0.02]),
+        ("local-level+arma(2,0)", vec![0.04, 0.001, 0.6, 0.2, 0.02]),
+    ];
+    for (text, params) in cases {
+        let spec: ModelSpec = text.parse().unwrap();
+        let model = spec.build(&params).unwrap();
+        let mut rng = Rng::new(11);
+        let n = 1500;
+        let mut y = simulate(&model, n, &mut rng);
+        for t in [0, 7, 8, 300, 1001] {
+            y[t] = f64::NAN;
+        }
+        let mut w = vec![1.0; n];
+        for t in [20, 500, 1200] {
+            w[t] = 4.0;
+        }
+        let mut dt = vec![1.0; n];
+        for (t, d) in [(40, 3.0), (800, 7.0)] {
+            dt[t] = d;
+        }
+        let obs = Observations { y: &y, p: 1, dt: Some(&dt), h_scale: Some(&w) };
+        for steady_tol in [0.0, 1e-11] {
+            let f = filter(&model, &obs, &FilterOptions { store: true, steady_tol, path: Path::Auto }).unwrap();
+            let run = |lean| {
+                let mut s = SmootherOutput { keep_aux: true, keep_del: true, lean, ..Default::default() };
+                smooth_into(&model, &obs, &f, &mut s);
+                s
+            };
+            let (full, lean) = (run(false), run(true));
+            let m = model.state_dim();
+            assert!(lean.lean && lean.state.is_empty() && lean.cov.is_empty(), "{text}: full arrays left in");
+            assert!(lean.r.is_empty() && lean.n_cum.is_empty());
+            let bits = |x: &[f64]| x.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
+            let mean: Vec<f64> = (0..n).map(|t| full.signal(&model, t, 0)).collect();
+            let var: Vec<f64> = (0..n).map(|t| full.signal_var(&model, t, 0)).collect();
+            assert_eq!(bits(&lean.sig_mean), bits(&mean), "{text}, tol {steady_tol}: signal");
+            assert_eq!(bits(&lean.sig_var), bits(&var), "{text}, tol {steady_tol}: signal variance");
+            assert_eq!(bits(&lean.del), bits(&full.del), "{text}: deletion residuals");
+            let mut finite_aux = 0;
+            for t in 0..n - 1 {
+                for j in 0..m {
+                    let (a, b) = (lean.state_aux(t, j), full.state_aux(t, j));
+                    assert_eq!(a.to_bits(), b.to_bits(), "{text}: aux at {t}, state {j}");
+                    finite_aux += usize::from(a.is_finite());
+                }
+            }
+            assert!(finite_aux > n - 20, "{text}: too few auxiliary residuals ({finite_aux})");
+            // The same as the values read back through the public accessors.
+            assert_eq!(lean.signal(&model, 5, 0).to_bits(), mean[5].to_bits());
+        }
+    }
+}
+
+#[test]
+fn a_run_without_the_filtered_arrays_smooths_the_same() {
+    // `skip_filtered` leaves a_filt and p_filt empty and changes nothing
+    // else, on every path (scalar, two states, matrices).
+    for (text, params) in [
+        ("local-level", vec![4.0, 0.3]),
+        ("local-level+arma(1,0)", vec![0.04, 0.001, 0.95, 0.02]),
+        ("local-level+arma(2,0)", vec![0.04, 0.001, 0.6, 0.2, 0.02]),
+    ] {
+        let spec: ModelSpec = text.parse().unwrap();
+        let model = spec.build(&params).unwrap();
+        let mut y = simulate(&model, 800, &mut Rng::new(3));
+        y[5] = f64::NAN;
+        y[400] = f64::NAN;
+        let obs = Observations { y: &y, p: 1, dt: None, h_scale: None };
+        let full = filter(&model, &obs, &FilterOptions::default()).unwrap();
+        let mut lean = FilterOutput { skip_filtered: true, ..Default::default() };
+        filter_into(&model, &obs, &FilterOptions::default(), &mut lean).unwrap();
+        assert!(lean.a_filt.is_empty() && lean.p_filt.is_empty(), "{text}");
+        assert!(!full.a_filt.is_empty());
+        let strip =
+            |f: &FilterOutput| FilterOutput { a_filt: vec![], p_filt: vec![], skip_filtered: false, ..f.clone() };
+        // (Compared as text: the missing readings' NaN innovations are
+        // not equal to themselves.)
+        let same = |a: &dyn std::fmt::Debug, b: &dyn std::fmt::Debug| format!("{a:?}") == format!("{b:?}");
+        assert!(same(&strip(&lean), &strip(&full)), "{text}: the filter runs differ");
+        let (sl, sf) = (smooth(&model, &obs, &lean), smooth(&model, &obs, &full));
+        assert!(same(&sl, &sf), "{text}: the smoothers differ");
+    }
+}
