@@ -466,7 +466,7 @@ impl Fitted {
     /// Smoothed process value (the signal Z a_t + d, without observation
     /// noise) and its standard deviation at every grid point.
     pub fn smooth(&self, obs: &TagObs, keep_aux: bool) -> Result<Smoothed, ModelError> {
-        self.smooth_inner(obs, &obs.y, keep_aux, None)
+        self.smooth_inner(obs, &obs.y, keep_aux, None, None)
     }
 
     /// The smoother with its auxiliary cumulants (as [`Fitted::smooth`] with
@@ -481,7 +481,7 @@ impl Fitted {
     /// (y - signal) / sqrt(Var(signal) + h w). Defined with or without
     /// observation noise; NaN inside the diffuse start.
     pub fn smooth_with_outliers(&self, obs: &TagObs, y_all: &[f64]) -> Result<Smoothed, ModelError> {
-        self.smooth_inner(obs, &obs.y, true, Some(y_all))
+        self.smooth_inner(obs, &obs.y, true, Some(y_all), None)
     }
 
     /// [`Fitted::smooth_with_outliers`] on the observations `y` (one per grid
@@ -491,7 +491,50 @@ impl Fitted {
         if y.len() != obs.len() {
             return Err(ModelError(format!("{} observations for {} grid points", y.len(), obs.len())));
         }
-        self.smooth_inner(obs, y, true, Some(y_all))
+        self.smooth_inner(obs, y, true, Some(y_all), None)
+    }
+
+    /// [`Fitted::smooth_with_outliers`] on `obs` itself, reusing the filter
+    /// pass that [`Fitted::innovations`] ran on this thread for these
+    /// observations (when no other pass ran since; else the filter runs
+    /// again, with the same result).
+    pub fn smooth_with_outliers_after(&self, obs: &TagObs, innov: &Innovations) -> Result<Smoothed, ModelError> {
+        self.smooth_inner(obs, &obs.y, true, Some(&obs.y), Some(innov.pass))
+    }
+
+    /// The standardised innovations e_t = v_t / sqrt(F_t) of the filter over
+    /// `obs` (exact diffuse start), from the first reading after the
+    /// diffuse states and `min_warm` more readings have been taken in (NaN
+    /// before, and where a reading is missing or left out). The filter's
+    /// arrays stay in this thread for [`Fitted::smooth_with_outliers_after`].
+    pub fn innovations(&self, obs: &TagObs, min_warm: usize) -> Result<Innovations, ModelError> {
+        let o = obs.observations();
+        FILTER_WORK.with(|work| {
+            let (pass, filt) = &mut *work.borrow_mut();
+            filt.skip_filtered = true;
+            *pass = 0;
+            ssm::filter_into(&self.model, &o, &FilterOptions::default(), filt)
+                .map_err(|e| ModelError(e.to_string()))?;
+            let n = obs.len();
+            let (mut e, mut v) = (vec![f64::NAN; n], vec![f64::NAN; n]);
+            let warm_after = self.model.n_diffuse() + min_warm;
+            let mut updates = 0usize;
+            for t in 0..n.min(filt.kind.len()) {
+                match filt.kind[t] {
+                    ssm::filter::ElemKind::Regular => {
+                        if updates >= warm_after {
+                            v[t] = filt.v[t];
+                            e[t] = filt.v[t] / filt.f[t].sqrt();
+                        }
+                        updates += 1;
+                    }
+                    ssm::filter::ElemKind::Diffuse => updates += 1,
+                    _ => {}
+                }
+            }
+            *pass = next_pass_id();
+            Ok(Innovations { e, v, pass: *pass })
+        })
     }
 
     fn smooth_inner(
@@ -500,20 +543,20 @@ impl Fitted {
         y: &[f64],
         keep_aux: bool,
         y_all: Option<&[f64]>,
+        after: Option<u64>,
     ) -> Result<Smoothed, ModelError> {
-        thread_local! {
-            // The filter's stored arrays, reused from tag to tag on a thread
-            // (tens of MB for a long window: fresh pages cost more than the
-            // recursion that fills them).
-            static FILTER_WORK: std::cell::RefCell<ssm::FilterOutput> = Default::default();
-        }
         let o = Observations { y, ..obs.observations() };
         FILTER_WORK.with(|work| {
-            let filt = &mut *work.borrow_mut();
-            // The smoother reads the predicted states, not the filtered ones.
-            filt.skip_filtered = true;
-            ssm::filter_into(&self.model, &o, &FilterOptions::default(), filt)
-                .map_err(|e| ModelError(e.to_string()))?;
+            let (pass, filt) = &mut *work.borrow_mut();
+            let kept = after.is_some_and(|id| id == *pass && filt.n == obs.len() && filt.is_stored());
+            if !kept {
+                // The smoother reads the predicted states, not the filtered ones.
+                filt.skip_filtered = true;
+                *pass = 0;
+                ssm::filter_into(&self.model, &o, &FilterOptions::default(), filt)
+                    .map_err(|e| ModelError(e.to_string()))?;
+            }
+            let filt = &*filt;
             let keep_del = y_all.is_some() && o.p == 1;
             // Only the signal, its variance and the auxiliary residuals are
             // read here, so the smoother keeps just those (`lean`).
@@ -578,6 +621,31 @@ impl Fitted {
         }
         out
     }
+}
+
+/// Standardised innovations of a filter pass ([`Fitted::innovations`]).
+#[derive(Debug, Clone)]
+pub struct Innovations {
+    /// v_t / sqrt(F_t) once warm, NaN elsewhere.
+    pub e: Vec<f64>,
+    /// v_t where `e` is defined, NaN elsewhere.
+    pub v: Vec<f64>,
+    /// Which filter pass of this thread it came from.
+    pass: u64,
+}
+
+/// A number no earlier filter pass of the process was given (0 is never one).
+fn next_pass_id() -> u64 {
+    static NEXT: std::sync::atomic::AtomicU64 = std::sync::atomic::AtomicU64::new(1);
+    NEXT.fetch_add(1, std::sync::atomic::Ordering::Relaxed)
+}
+
+thread_local! {
+    /// The filter's stored arrays, reused from tag to tag on a thread (tens
+    /// of MB for a long window: fresh pages cost more than the recursion
+    /// that fills them), with the id of the pass that filled them when a
+    /// caller may reuse it ([`Fitted::innovations`]), else 0.
+    static FILTER_WORK: std::cell::RefCell<(u64, ssm::FilterOutput)> = Default::default();
 }
 
 thread_local! {

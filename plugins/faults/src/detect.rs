@@ -162,7 +162,25 @@ pub fn find(
     // 2. The online pass: spikes and re-examined level shifts.
     let level = level_index(&f.model);
     let gopts = GateOptions { spike: cfg.spike, shift_run: cfg.shift_run, level, min_warm: 3 };
-    let g = gate::run(&f.model, &clean, &gopts, &|k| obs.row[k].is_some());
+    let can_gate = |k: usize| obs.row[k].is_some();
+    // On most tags the gate rejects nothing: its pass is then the plain
+    // filter's over `clean`, whose innovations are computed first, and the
+    // first smoother pass below reuses that filter. Only when a reading
+    // would be rejected does the gate run its own pass.
+    let mut plain = f.innovations(&clean, gopts.min_warm).map_err(|e| e.to_string())?;
+    let rejects_none = (0..n).all(|k| !(plain.e[k].abs() > cfg.spike && can_gate(k)));
+    let (g, plain) = if rejects_none {
+        let g = gate::GateOutput {
+            e: std::mem::take(&mut plain.e),
+            v: std::mem::take(&mut plain.v),
+            gated: vec![false; n],
+            shifts: Vec::new(),
+            f_typical: f64::NAN,
+        };
+        (g, Some(plain))
+    } else {
+        (gate::run(&f.model, &clean, &gopts, &can_gate), None)
+    };
 
     // Process transients: where this tag changed abruptly together with the
     // plant (its redundant group, or enough other tags), large innovations
@@ -220,7 +238,13 @@ pub fn find(
     };
     let first = left_out(&|k| fault_at[k].is_some() || g.gated[k]);
     let spike_pass = |y: &[f64]| -> Result<(Vec<f64>, tagwright::tagmodel::Smoothed), String> {
-        let mut sm = f.smooth_with_outliers_of(&clean, y, &clean.y).map_err(|e| e.to_string())?;
+        // The filter pass of `plain` is this one's when it left nothing out.
+        let same = || y.iter().zip(&clean.y).all(|(a, b)| a.to_bits() == b.to_bits());
+        let mut sm = match &plain {
+            Some(p) if same() => f.smooth_with_outliers_after(&clean, p),
+            _ => f.smooth_with_outliers_of(&clean, y, &clean.y),
+        }
+        .map_err(|e| e.to_string())?;
         Ok((std::mem::take(&mut sm.outlier), sm))
     };
     let (o1, sm1) = spike_pass(&first)?;

@@ -401,3 +401,48 @@ fn fitted_parameters_are_carried_to_the_next_run() {
     run(&mut next, serde_json::Value::Null, None);
     assert!((next.report.params["sigma2.obs"] - 0.0025).abs() < 0.0012);
 }
+
+#[test]
+fn without_rejections_the_gate_is_the_plain_filter() {
+    // `find` takes the gate's innovations from the plain filter (exact
+    // diffuse start) when the gate would reject nothing. The gate's own
+    // pass (a large finite start variance instead) must then agree with it
+    // once both are warm, and reject nothing; and the smoother pass that
+    // reuses the plain filter must equal one that runs its own.
+    let y = simulate(21, 4000);
+    let mut w = work("FT-7", y, "local-level+arma(1,0)");
+    w.table.sampling = Sampling::Regular;
+    // Two states (the fixed-size recursions) and one (the scalar ones).
+    let models: [(&str, &[(&str, f64)]); 2] = [
+        (
+            "local-level+arma(1,0)",
+            &[("sigma2.obs", 0.0025), ("sigma2.level", 0.0001), ("phi.1", 0.9), ("sigma2.arma", 0.0025)],
+        ),
+        ("local-level", &[("sigma2.obs", 0.005), ("sigma2.level", 0.003)]),
+    ];
+    for (spec, params) in models {
+        let spec: ModelSpec = spec.parse().unwrap();
+        let given = params.iter().map(|(k, v)| (k.to_string(), *v)).collect();
+        let f = Fitted::given(&spec, &given).unwrap();
+        let mut obs = TagObs::build(&w.table, 1.0, |_| true, 0);
+        obs.set_noise(f.obs_noise());
+        let opts = gate::GateOptions { spike: 6.0, shift_run: 3, level: Some(0), min_warm: 3 };
+        let g = gate::run(&f.model, &obs, &opts, &|_| true);
+        assert!(!g.gated.iter().any(|&x| x), "{spec}: a clean series has nothing to gate");
+        let plain = f.innovations(&obs, opts.min_warm).unwrap();
+        let warm = |e: &[f64]| e.iter().position(|v| v.is_finite()).unwrap();
+        assert_eq!(warm(&plain.e), warm(&g.e), "{spec}: both warm at the same reading");
+        for t in 100..obs.len() {
+            assert!((plain.e[t] - g.e[t]).abs() < 1e-6, "{spec} t={t}: {} vs {}", plain.e[t], g.e[t]);
+        }
+        let reused = f.smooth_with_outliers_after(&obs, &plain).unwrap();
+        let fresh = f.smooth_with_outliers(&obs, &obs.y).unwrap();
+        let bits = |x: &[f64]| x.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
+        assert_eq!(bits(&reused.outlier), bits(&fresh.outlier), "{spec}");
+        // Another pass in between: the kept filter is not used, same result.
+        let plain2 = f.innovations(&obs, opts.min_warm).unwrap();
+        f.smooth_with_outliers(&obs, &obs.y).unwrap();
+        let again = f.smooth_with_outliers_after(&obs, &plain2).unwrap();
+        assert_eq!(bits(&again.outlier), bits(&fresh.outlier), "{spec}");
+    }
+}
