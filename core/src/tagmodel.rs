@@ -496,8 +496,8 @@ impl Fitted {
 
     /// [`Fitted::smooth_with_outliers`] on `obs` itself, reusing the filter
     /// pass that [`Fitted::innovations`] ran on this thread for these
-    /// observations (when no other pass ran since; else the filter runs
-    /// again, with the same result).
+    /// observations (when it was the last call of `innovations` on this
+    /// thread; else the filter runs again, with the same result).
     pub fn smooth_with_outliers_after(&self, obs: &TagObs, innov: &Innovations) -> Result<Smoothed, ModelError> {
         self.smooth_inner(obs, &obs.y, true, Some(&obs.y), Some(innov.pass))
     }
@@ -510,7 +510,7 @@ impl Fitted {
     pub fn innovations(&self, obs: &TagObs, min_warm: usize) -> Result<Innovations, ModelError> {
         let o = obs.observations();
         FILTER_WORK.with(|work| {
-            let (pass, filt) = &mut *work.borrow_mut();
+            let FilterWork { kept_pass: pass, kept: filt, .. } = &mut *work.borrow_mut();
             filt.skip_filtered = true;
             *pass = 0;
             ssm::filter_into(&self.model, &o, &FilterOptions::default(), filt)
@@ -547,12 +547,12 @@ impl Fitted {
     ) -> Result<Smoothed, ModelError> {
         let o = Observations { y, ..obs.observations() };
         FILTER_WORK.with(|work| {
-            let (pass, filt) = &mut *work.borrow_mut();
-            let kept = after.is_some_and(|id| id == *pass && filt.n == obs.len() && filt.is_stored());
-            if !kept {
+            let FilterWork { kept_pass, kept, other } = &mut *work.borrow_mut();
+            let reuse = after.is_some_and(|id| id == *kept_pass && kept.n == obs.len() && kept.is_stored());
+            let filt = if reuse { kept } else { other };
+            if !reuse {
                 // The smoother reads the predicted states, not the filtered ones.
                 filt.skip_filtered = true;
-                *pass = 0;
                 ssm::filter_into(&self.model, &o, &FilterOptions::default(), filt)
                     .map_err(|e| ModelError(e.to_string()))?;
             }
@@ -640,12 +640,22 @@ fn next_pass_id() -> u64 {
     NEXT.fetch_add(1, std::sync::atomic::Ordering::Relaxed)
 }
 
+/// The filter's stored arrays, reused from tag to tag on a thread (tens of
+/// MB for a long window: fresh pages cost more than the recursion that
+/// fills them).
+#[derive(Default)]
+struct FilterWork {
+    /// The id of the pass in `kept` ([`Fitted::innovations`]), 0 if none.
+    kept_pass: u64,
+    /// The last pass of [`Fitted::innovations`], which a later smoother
+    /// pass on the same observations reuses, even after other passes.
+    kept: ssm::FilterOutput,
+    /// Every other pass.
+    other: ssm::FilterOutput,
+}
+
 thread_local! {
-    /// The filter's stored arrays, reused from tag to tag on a thread (tens
-    /// of MB for a long window: fresh pages cost more than the recursion
-    /// that fills them), with the id of the pass that filled them when a
-    /// caller may reuse it ([`Fitted::innovations`]), else 0.
-    static FILTER_WORK: std::cell::RefCell<(u64, ssm::FilterOutput)> = Default::default();
+    static FILTER_WORK: std::cell::RefCell<FilterWork> = Default::default();
 }
 
 thread_local! {

@@ -164,22 +164,21 @@ pub fn find(
     let gopts = GateOptions { spike: cfg.spike, shift_run: cfg.shift_run, level, min_warm: 3 };
     let can_gate = |k: usize| obs.row[k].is_some();
     // On most tags the gate rejects nothing: its pass is then the plain
-    // filter's over `clean`, whose innovations are computed first, and the
-    // first smoother pass below reuses that filter. Only when a reading
-    // would be rejected does the gate run its own pass.
+    // filter's over `clean`, whose innovations are computed first, and a
+    // smoother pass below that leaves nothing out reuses that filter. Only
+    // when a reading would be rejected does the gate run its own pass.
     let mut plain = f.innovations(&clean, gopts.min_warm).map_err(|e| e.to_string())?;
     let rejects_none = (0..n).all(|k| !(plain.e[k].abs() > cfg.spike && can_gate(k)));
-    let (g, plain) = if rejects_none {
-        let g = gate::GateOutput {
+    let g = if rejects_none {
+        gate::GateOutput {
             e: std::mem::take(&mut plain.e),
             v: std::mem::take(&mut plain.v),
             gated: vec![false; n],
             shifts: Vec::new(),
             f_typical: f64::NAN,
-        };
-        (g, Some(plain))
+        }
     } else {
-        (gate::run(&f.model, &clean, &gopts, &can_gate), None)
+        gate::run(&f.model, &clean, &gopts, &can_gate)
     };
 
     // Process transients: where this tag changed abruptly together with the
@@ -238,11 +237,14 @@ pub fn find(
     };
     let first = left_out(&|k| fault_at[k].is_some() || g.gated[k]);
     let spike_pass = |y: &[f64]| -> Result<(Vec<f64>, tagwright::tagmodel::Smoothed), String> {
-        // The filter pass of `plain` is this one's when it left nothing out.
-        let same = || y.iter().zip(&clean.y).all(|(a, b)| a.to_bits() == b.to_bits());
-        let mut sm = match &plain {
-            Some(p) if same() => f.smooth_with_outliers_after(&clean, p),
-            _ => f.smooth_with_outliers_of(&clean, y, &clean.y),
+        // The filter pass of `plain` is this one's when it leaves nothing
+        // out (the first pass on most tags; the second one after a gated
+        // reading that the smoother did not confirm as a spike).
+        let same = y.iter().zip(&clean.y).all(|(a, b)| a.to_bits() == b.to_bits());
+        let mut sm = if same {
+            f.smooth_with_outliers_after(&clean, &plain)
+        } else {
+            f.smooth_with_outliers_of(&clean, y, &clean.y)
         }
         .map_err(|e| e.to_string())?;
         Ok((std::mem::take(&mut sm.outlier), sm))

@@ -439,10 +439,16 @@ fn without_rejections_the_gate_is_the_plain_filter() {
         let fresh = f.smooth_with_outliers(&obs, &obs.y).unwrap();
         let bits = |x: &[f64]| x.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
         assert_eq!(bits(&reused.outlier), bits(&fresh.outlier), "{spec}");
-        // Another pass in between: the kept filter is not used, same result.
+        // Another smoother pass in between leaves the kept filter alone; a
+        // later `innovations` replaces it, and the older one then runs its
+        // filter again. The same result every time.
         let plain2 = f.innovations(&obs, opts.min_warm).unwrap();
-        f.smooth_with_outliers(&obs, &obs.y).unwrap();
+        let mut other = obs.clone();
+        other.y[7] = f64::NAN;
+        f.smooth_with_outliers(&other, &obs.y).unwrap();
         let again = f.smooth_with_outliers_after(&obs, &plain2).unwrap();
         assert_eq!(bits(&again.outlier), bits(&fresh.outlier), "{spec}");
+        let stale = f.smooth_with_outliers_after(&obs, &plain).unwrap();
+        assert_eq!(bits(&stale.outlier), bits(&fresh.outlier), "{spec}");
     }
 }
