@@ -251,8 +251,9 @@ pub fn find(
     };
     let (o1, sm1) = spike_pass(&first)?;
     let prior = fault_at.clone();
+    // (The rare condition first: most readings are far inside the bound.)
     let is_spike =
-        |o: &[f64], k: usize| obs.row[k].is_some() && prior[k].is_none() && o[k].is_finite() && o[k].abs() > cfg.spike;
+        |o: &[f64], k: usize| o[k].abs() > cfg.spike && o[k].is_finite() && obs.row[k].is_some() && prior[k].is_none();
     let second = left_out(&|k| fault_at[k].is_some() || is_spike(&o1, k));
     // The second pass changes nothing when it would leave out exactly the
     // readings the first one did.
@@ -419,14 +420,16 @@ fn step_size(y: &[f64], k: usize, w: usize) -> (f64, f64) {
 fn stuck_runs(obs: &TagObs, table: &TagTable, cfg: &Config, f_min: f64) -> Vec<Decision> {
     let rows: Vec<usize> =
         obs.row.iter().zip(&obs.y).filter(|(r, y)| r.is_some() && y.is_finite()).filter_map(|(r, _)| *r).collect();
-    // Quantum: the smallest positive difference between consecutive readings.
-    let mut q = f64::INFINITY;
-    for w in rows.windows(2) {
-        let d = (table.raw[w[1]] - table.raw[w[0]]).abs();
-        if d > 0.0 && d < q {
-            q = d;
-        }
-    }
+    // Quantum: the smallest positive difference between consecutive readings
+    // (without branches: a zero difference counts as infinite).
+    let positive = |d: f64| if d > 0.0 { d } else { f64::INFINITY };
+    let q = if rows.last().is_some_and(|&l| l + 1 - rows[0] == rows.len()) {
+        // Consecutive rows (the usual case): straight over the readings.
+        let raw = &table.raw[rows[0]..rows[0] + rows.len()];
+        raw.windows(2).map(|w| positive((w[1] - w[0]).abs())).fold(f64::INFINITY, f64::min)
+    } else {
+        rows.windows(2).map(|w| positive((table.raw[w[1]] - table.raw[w[0]]).abs())).fold(f64::INFINITY, f64::min)
+    };
     if !q.is_finite() || f_min.is_nan() || f_min <= 0.0 {
         return Vec::new();
     }
