@@ -147,13 +147,23 @@ pub fn change_times(s: &TagSeries, period_us: i64) -> Vec<i64> {
         prefix.push(prefix.last().copied().unwrap_or(0.0) + v);
     }
     let span = 2 * k as i64 * period_us.max(1);
+    // d_t = mean of the k readings from t on - mean of the k before t, where
+    // those 2k readings span at most 2k periods (NaN elsewhere). Written
+    // over zipped slices (prefix[t + k], prefix[t], prefix[t - k],
+    // ts[t + k - 1], ts[t - k] for t = k..=n-k) without branches, so the
+    // loop vectorises.
     let mut d = vec![f64::NAN; n];
-    for t in k..=n - k {
-        if t < n && ts[t + k - 1] - ts[t - k] <= span {
-            let after = (prefix[t + k] - prefix[t]) / k as f64;
-            let before = (prefix[t] - prefix[t - k]) / k as f64;
-            d[t] = after - before;
-        }
+    let kf = k as f64;
+    let m = n + 1 - 2 * k;
+    let lanes = d[k..k + m]
+        .iter_mut()
+        .zip(&prefix[2 * k..2 * k + m])
+        .zip(&prefix[k..k + m])
+        .zip(&prefix[..m])
+        .zip(ts[2 * k - 1..2 * k - 1 + m].iter().zip(&ts[..m]));
+    for ((((dt, &pa), &pt), &pb), (&ta, &tb)) in lanes {
+        let step = (pa - pt) / kf - (pt - pb) / kf;
+        *dt = if ta - tb <= span { step } else { f64::NAN };
     }
     let mut abs: Vec<f64> = d.iter().filter(|v| v.is_finite()).map(|v| v.abs()).collect();
     if abs.len() < 2 * k {
