@@ -510,9 +510,10 @@ impl Fitted {
     pub fn innovations(&self, obs: &TagObs, min_warm: usize) -> Result<Innovations, ModelError> {
         let o = obs.observations();
         FILTER_WORK.with(|work| {
-            let FilterWork { kept_pass: pass, kept: filt, .. } = &mut *work.borrow_mut();
+            let FilterWork { kept_pass: pass, kept: filt, kept_y, .. } = &mut *work.borrow_mut();
             filt.skip_filtered = true;
             *pass = 0;
+            *kept_y = obs.y.as_ptr() as usize;
             ssm::filter_into(&self.model, &o, &FilterOptions::default(), filt)
                 .map_err(|e| ModelError(e.to_string()))?;
             let n = obs.len();
@@ -547,8 +548,11 @@ impl Fitted {
     ) -> Result<Smoothed, ModelError> {
         let o = Observations { y, ..obs.observations() };
         FILTER_WORK.with(|work| {
-            let FilterWork { kept_pass, kept, other } = &mut *work.borrow_mut();
-            let reuse = after.is_some_and(|id| id == *kept_pass && kept.n == obs.len() && kept.is_stored());
+            let FilterWork { kept_pass, kept, kept_y, other } = &mut *work.borrow_mut();
+            // (The same readings as well as the same pass: a caller that
+            // hands over other observations gets a fresh filter run.)
+            let same_obs = *kept_y == obs.y.as_ptr() as usize && kept.n == obs.len();
+            let reuse = after.is_some_and(|id| id == *kept_pass && same_obs && kept.is_stored());
             let filt = if reuse { kept } else { other };
             if !reuse {
                 // The smoother reads the predicted states, not the filtered ones.
@@ -647,6 +651,8 @@ fn next_pass_id() -> u64 {
 struct FilterWork {
     /// The id of the pass in `kept` ([`Fitted::innovations`]), 0 if none.
     kept_pass: u64,
+    /// Address of the readings that pass ran on.
+    kept_y: usize,
     /// The last pass of [`Fitted::innovations`], which a later smoother
     /// pass on the same observations reuses, even after other passes.
     kept: ssm::FilterOutput,

@@ -450,5 +450,11 @@ fn without_rejections_the_gate_is_the_plain_filter() {
         assert_eq!(bits(&again.outlier), bits(&fresh.outlier), "{spec}");
         let stale = f.smooth_with_outliers_after(&obs, &plain).unwrap();
         assert_eq!(bits(&stale.outlier), bits(&fresh.outlier), "{spec}");
+        // Other observations handed over with the kept pass's token are
+        // filtered afresh, not smoothed with the kept filter.
+        let plain3 = f.innovations(&obs, opts.min_warm).unwrap();
+        let theirs = f.smooth_with_outliers_after(&other, &plain3).unwrap();
+        let own = f.smooth_with_outliers(&other, &other.y).unwrap();
+        assert_eq!(bits(&theirs.outlier), bits(&own.outlier), "{spec}");
     }
 }
