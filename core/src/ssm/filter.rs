@@ -904,7 +904,13 @@ fn run_two_states<const UNIT_Z: bool>(
         // T P T' + RQR' on the symmetric P.
         let [s00, s01, s11] = if UNIT_Z && t01 == 0.0 && t10 == 0.0 {
             (a0, a1) = (t00 * a0 + c0, t11 * a1 + c1);
-            [(t00 * p00) * t00, (t00 * p01) * t11, (t11 * p11) * t11]
+            if t00 == 1.0 {
+                // A random-walk level (x * 1 = x): two multiplications
+                // fewer on the chain from one P to the next.
+                [p00, p01 * t11, (t11 * p11) * t11]
+            } else {
+                [(t00 * p00) * t00, (t00 * p01) * t11, (t11 * p11) * t11]
+            }
         } else {
             (a0, a1) = (t00 * a0 + t01 * a1 + c0, t10 * a0 + t11 * a1 + c1);
             congruence2([t00, t01, t10, t11], [p00, p01, p11])

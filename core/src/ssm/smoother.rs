@@ -490,7 +490,12 @@ fn run_two_states<const UNIT_Z: bool>(
                 (t00, t10, t01, t11) = load(sys);
                 *cur_dt = dt;
             }
-            if t01 == 0.0 && t10 == 0.0 {
+            if t01 == 0.0 && t10 == 0.0 && t00 == 1.0 {
+                // A random-walk level and a diagonal T (x * 1 = x, and the
+                // products with the zeros drop out).
+                r1 *= t11;
+                [n01, n11] = [n01 * t11, (t11 * n11) * t11];
+            } else if t01 == 0.0 && t10 == 0.0 {
                 // A diagonal T (the products with its zeros drop out).
                 (r0, r1) = (t00 * r0, t11 * r1);
                 [n00, n01, n11] = [(t00 * n00) * t00, (t00 * n01) * t11, (t11 * n11) * t11];
