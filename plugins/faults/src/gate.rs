@@ -8,6 +8,11 @@
 //! Penzer 1998) and carries on, so the new level is learnt instead of every
 //! later reading being rejected.
 //!
+//! A gate that rejects nothing is the plain filter: `detect::find` first
+//! takes the plain filter's innovations ([`tagwright::tagmodel::Fitted::innovations`],
+//! exact diffuse start) and runs this pass only when some reading would be
+//! rejected, which on most tags none is.
+//!
 //! Fixed-size nalgebra matrices for up to 6 states, plain numbers for two
 //! states (the common case); the steady state (gain unchanged from one
 //! reading to the next) is detected and then only the mean is propagated,
