@@ -149,10 +149,10 @@ impl Disk {
                 // the rest go through the cache. A real failure (a full
                 // disk) fails there too and is reported.
                 Err(_) => {
-                    let block = st.bytes().to_vec();
-                    self.staging = None;
-                    set_uncached(&self.file, false);
-                    self.cached(&block)?;
+                    if let Some(mut st) = self.staging.take() {
+                        set_uncached(&self.file, false);
+                        self.cached(st.bytes())?;
+                    }
                 }
             }
         }
@@ -172,8 +172,7 @@ impl Disk {
         if let Some(mut st) = self.staging.take() {
             set_uncached(&self.file, false);
             let len = st.len;
-            let tail = st.bytes()[..len].to_vec();
-            self.cached(&tail)?;
+            self.cached(&st.bytes()[..len])?;
         }
         Ok(self.file)
     }

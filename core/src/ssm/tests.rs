@@ -389,22 +389,23 @@ fn two_state_loop_matches_the_matrix_code() {
     }
 }
 
+/// One model per filter and smoother path: scalar (local level), two
+/// states (level + AR(1), the plain-number loops after the diffuse phase)
+/// and three states (level + AR(2), the matrix loops).
+const ONE_EACH_PATH: [(&str, &[f64]); 3] = [
+    ("local-level", &[4.0, 0.3]),
+    ("local-level+arma(1,0)", &[0.04, 0.001, 0.95, 0.02]),
+    ("local-level+arma(2,0)", &[0.04, 0.001, 0.6, 0.2, 0.02]),
+];
+
 #[test]
 fn the_lean_smoother_keeps_exactly_what_the_full_one_gives() {
-    // One model per path: scalar (local level), two states (level + AR(1),
-    // the plain-number loop after the diffuse phase) and three states
-    // (level + AR(2), the matrix loop);
-    // missing and uncertain readings and gaps, with and without the
-    // steady state. The lean arrays must equal, bit for bit, the signal,
+    // One model per path, with missing and uncertain readings and gaps,
+    // with and without the steady state. The lean arrays must equal, bit for bit, the signal,
     // its variance and the auxiliary residuals computed from the full ones.
-    let cases: [(&str, Vec<f64>); 3] = [
-        ("local-level", vec![4.0, 0.3]),
-        ("local-level+arma(1,0)", vec![0.04, 0.001, 0.95, 0.02]),
-        ("local-level+arma(2,0)", vec![0.04, 0.001, 0.6, 0.2, 0.02]),
-    ];
-    for (text, params) in cases {
+    for (text, params) in ONE_EACH_PATH {
         let spec: ModelSpec = text.parse().unwrap();
-        let model = spec.build(&params).unwrap();
+        let model = spec.build(params).unwrap();
         let mut rng = Rng::new(11);
         let n = 1500;
         let mut y = simulate(&model, n, &mut rng);
@@ -456,13 +457,9 @@ fn the_lean_smoother_keeps_exactly_what_the_full_one_gives() {
 fn a_run_without_the_filtered_arrays_smooths_the_same() {
     // `skip_filtered` leaves a_filt and p_filt empty and changes nothing
     // else, on every path (scalar, two states, matrices).
-    for (text, params) in [
-        ("local-level", vec![4.0, 0.3]),
-        ("local-level+arma(1,0)", vec![0.04, 0.001, 0.95, 0.02]),
-        ("local-level+arma(2,0)", vec![0.04, 0.001, 0.6, 0.2, 0.02]),
-    ] {
+    for (text, params) in ONE_EACH_PATH {
         let spec: ModelSpec = text.parse().unwrap();
-        let model = spec.build(&params).unwrap();
+        let model = spec.build(params).unwrap();
         let mut y = simulate(&model, 800, &mut Rng::new(3));
         y[5] = f64::NAN;
         y[400] = f64::NAN;

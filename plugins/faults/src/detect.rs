@@ -168,18 +168,9 @@ pub fn find(
     // smoother pass below that leaves nothing out reuses that filter. Only
     // when a reading would be rejected does the gate run its own pass.
     let mut plain = f.innovations(&clean, gopts.min_warm).map_err(|e| e.to_string())?;
-    let rejects_none = (0..n).all(|k| !(plain.e[k].abs() > cfg.spike && can_gate(k)));
-    let g = if rejects_none {
-        gate::GateOutput {
-            e: std::mem::take(&mut plain.e),
-            v: std::mem::take(&mut plain.v),
-            gated: vec![false; n],
-            shifts: Vec::new(),
-            f_typical: f64::NAN,
-        }
-    } else {
-        gate::run(&f.model, &clean, &gopts, &can_gate)
-    };
+    let (e, v) = (std::mem::take(&mut plain.e), std::mem::take(&mut plain.v));
+    let g = gate::GateOutput::from_plain(e, v, &gopts, &can_gate)
+        .unwrap_or_else(|| gate::run(&f.model, &clean, &gopts, &can_gate));
 
     // Process transients: where this tag changed abruptly together with the
     // plant (its redundant group, or enough other tags), large innovations
@@ -423,13 +414,7 @@ fn stuck_runs(obs: &TagObs, table: &TagTable, cfg: &Config, f_min: f64) -> Vec<D
     // Quantum: the smallest positive difference between consecutive readings
     // (without branches: a zero difference counts as infinite).
     let positive = |d: f64| if d > 0.0 { d } else { f64::INFINITY };
-    let q = if rows.last().is_some_and(|&l| l + 1 - rows[0] == rows.len()) {
-        // Consecutive rows (the usual case): straight over the readings.
-        let raw = &table.raw[rows[0]..rows[0] + rows.len()];
-        raw.windows(2).map(|w| positive((w[1] - w[0]).abs())).fold(f64::INFINITY, f64::min)
-    } else {
-        rows.windows(2).map(|w| positive((table.raw[w[1]] - table.raw[w[0]]).abs())).fold(f64::INFINITY, f64::min)
-    };
+    let q = rows.windows(2).map(|w| positive((table.raw[w[1]] - table.raw[w[0]]).abs())).fold(f64::INFINITY, f64::min);
     if !q.is_finite() || f_min.is_nan() || f_min <= 0.0 {
         return Vec::new();
     }

@@ -57,6 +57,21 @@ pub struct GateOptions {
     pub min_warm: usize,
 }
 
+impl GateOutput {
+    /// The pass's output taken from the plain filter's standardised
+    /// innovations `e` and innovations `v` (NaN until warm, as the pass
+    /// has them), when the pass would reject none of the readings: a gate
+    /// that rejects nothing is that filter. `None` when some reading would
+    /// be rejected (then the pass itself must run).
+    pub fn from_plain(e: Vec<f64>, v: Vec<f64>, opts: &GateOptions, can_gate: &dyn Fn(usize) -> bool) -> Option<Self> {
+        let rejects = (0..e.len()).any(|k| e[k].abs() > opts.spike && can_gate(k));
+        (!rejects).then(|| {
+            let n = e.len();
+            GateOutput { e, v, gated: vec![false; n], shifts: Vec::new(), f_typical: f64::NAN }
+        })
+    }
+}
+
 /// Runs the online pass on `obs` with `model`; `can_gate(k)` says whether
 /// grid point k may be rejected (pseudo-observations may not).
 pub fn run(model: &StateSpace, obs: &TagObs, opts: &GateOptions, can_gate: &dyn Fn(usize) -> bool) -> GateOutput {

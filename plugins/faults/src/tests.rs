@@ -53,6 +53,17 @@ fn run(w: &mut TagWork, params: serde_json::Value, survey: Option<&Survey>) {
     w.table.check().unwrap();
 }
 
+/// Level plus AR(1) parameters close to [`simulate`]'s.
+const TWO_STATE: &[(&str, f64)] =
+    &[("sigma2.obs", 0.0025), ("sigma2.level", 0.0001), ("phi.1", 0.9), ("sigma2.arma", 0.0025)];
+
+/// A model with the parameters given by name.
+fn given(spec: &str, params: &[(&str, f64)]) -> Fitted {
+    let spec: ModelSpec = spec.parse().unwrap();
+    let by_name = params.iter().map(|(k, v)| (k.to_string(), *v)).collect();
+    Fitted::given(&spec, &by_name).unwrap()
+}
+
 fn rows_with(w: &TagWork, f: Fault) -> Vec<usize> {
     (0..w.table.len()).filter(|&i| w.table.fault[i] == Some(f)).collect()
 }
@@ -359,17 +370,11 @@ fn deletion_residual_equals_leaving_the_reading_out() {
     };
     let table = TagTable::from_series(&s, 1, Sampling::Regular);
     // Two states (the fixed-size recursions) and one (the scalar ones).
-    let models: [(&str, &[(&str, f64)]); 2] = [
-        (
-            "local-level+arma(1,0)",
-            &[("sigma2.obs", 0.0025), ("sigma2.level", 0.0001), ("phi.1", 0.9), ("sigma2.arma", 0.0025)],
-        ),
-        ("local-level", &[("sigma2.obs", 0.0025), ("sigma2.level", 0.0004)]),
-    ];
-    for (spec, params) in models {
-        let spec: ModelSpec = spec.parse().unwrap();
-        let given = params.iter().map(|(k, v)| (k.to_string(), *v)).collect();
-        let f = Fitted::given(&spec, &given).unwrap();
+    for f in [
+        given("local-level+arma(1,0)", TWO_STATE),
+        given("local-level", &[("sigma2.obs", 0.0025), ("sigma2.level", 0.0004)]),
+    ] {
+        let spec = &f.spec;
         let mut obs = TagObs::build(&table, 1.0, |_| true, 0);
         let all = f.smooth_with_outliers(&obs, &y).unwrap();
         for t in [50, 300, 598] {
@@ -413,17 +418,11 @@ fn without_rejections_the_gate_is_the_plain_filter() {
     let mut w = work("FT-7", y, "local-level+arma(1,0)");
     w.table.sampling = Sampling::Regular;
     // Two states (the fixed-size recursions) and one (the scalar ones).
-    let models: [(&str, &[(&str, f64)]); 2] = [
-        (
-            "local-level+arma(1,0)",
-            &[("sigma2.obs", 0.0025), ("sigma2.level", 0.0001), ("phi.1", 0.9), ("sigma2.arma", 0.0025)],
-        ),
-        ("local-level", &[("sigma2.obs", 0.005), ("sigma2.level", 0.003)]),
-    ];
-    for (spec, params) in models {
-        let spec: ModelSpec = spec.parse().unwrap();
-        let given = params.iter().map(|(k, v)| (k.to_string(), *v)).collect();
-        let f = Fitted::given(&spec, &given).unwrap();
+    for f in [
+        given("local-level+arma(1,0)", TWO_STATE),
+        given("local-level", &[("sigma2.obs", 0.005), ("sigma2.level", 0.003)]),
+    ] {
+        let spec = &f.spec;
         let mut obs = TagObs::build(&w.table, 1.0, |_| true, 0);
         obs.set_noise(f.obs_noise());
         let opts = gate::GateOptions { spike: 6.0, shift_run: 3, level: Some(0), min_warm: 3 };
