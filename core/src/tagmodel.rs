@@ -60,15 +60,21 @@ pub struct TagObs {
     /// Multiplier of the observation variance per grid point.
     pub w: Vec<f64>,
     /// Absolute extra variance per grid point (deadband pseudo-observations);
-    /// folded into `w` by [`TagObs::set_noise`].
+    /// folded into `w` by [`TagObs::set_noise`]. Empty when every one is 0
+    /// (a regularly sampled tag).
     extra_var: Vec<f64>,
     /// Base multiplier per grid point (uncertain quality, noisy readings).
     base_w: Vec<f64>,
     /// Grid time per point, µs UTC.
     pub ts_us: Vec<i64>,
-    /// Table row of each grid point, or `None` for a pseudo-row.
-    pub row: Vec<Option<usize>>,
+    /// Table row of each grid point ([`NO_ROW`] for a pseudo-row); empty
+    /// when grid point k is table row k (a regularly sampled tag). Read it
+    /// with [`TagObs::row`] or [`TagObs::rows`].
+    rows: Vec<usize>,
 }
+
+/// A pseudo-row's entry in [`TagObs`]'s row map.
+const NO_ROW: usize = usize::MAX;
 
 impl TagObs {
     /// Builds the arrays. `use_row(i)` says whether table row `i` is an
@@ -106,7 +112,7 @@ impl TagObs {
             extra_var: Vec::with_capacity(n),
             base_w: Vec::with_capacity(n),
             ts_us: Vec::with_capacity(n),
-            row: Vec::with_capacity(n),
+            rows: Vec::with_capacity(n),
         };
         let deadband = match table.sampling {
             Sampling::Exception { deadband } => Some(deadband),
@@ -175,38 +181,58 @@ impl TagObs {
         let n = table.len();
         let period = table.period_us.max(1) as f64;
         let uncertain = uncertain_factor.max(1.0);
-        let y: Vec<f64> = (0..n)
-            .map(|i| {
-                let usable = table.status[i] != Status::Filled && use_row(i) && table.raw[i].is_finite();
-                if usable {
-                    table.raw[i]
-                } else {
-                    f64::NAN
-                }
-            })
-            .collect();
-        let base_w: Vec<f64> = (0..n)
-            .map(|i| {
-                if table.status[i] != Status::Filled && table.quality[i] == Quality::Uncertain {
-                    uncertain
-                } else {
-                    1.0
-                }
-            })
-            .collect();
-        let mut dt: Vec<f64> = table.ts_us.windows(2).map(|w| ((w[1] - w[0]) as f64 / period).max(1e-6)).collect();
+        let (mut y, mut base_w) = (Vec::with_capacity(n), Vec::with_capacity(n));
+        let rows = table.raw.iter().zip(&table.status).zip(&table.quality).take(n);
+        for (i, ((&raw, &status), &quality)) in rows.enumerate() {
+            let inserted = status == Status::Filled;
+            y.push(if !inserted && use_row(i) && raw.is_finite() { raw } else { f64::NAN });
+            base_w.push(if !inserted && quality == Quality::Uncertain { uncertain } else { 1.0 });
+        }
+        // (One period is the usual step: its quotient, 1, needs no division.)
+        let one = table.period_us.max(1);
+        let mut dt = Vec::with_capacity(n);
+        dt.extend(table.ts_us.windows(2).map(|w| {
+            let d = w[1] - w[0];
+            if d == one {
+                1.0
+            } else {
+                (d as f64 / period).max(1e-6)
+            }
+        }));
         if n > 0 {
             dt.push(1.0);
         }
-        TagObs {
-            y,
-            dt,
-            w: base_w.clone(),
-            extra_var: vec![0.0; n],
-            base_w,
-            ts_us: table.ts_us.clone(),
-            row: (0..n).map(Some).collect(),
+        // (No pseudo-observation: `extra_var` and the row map stay empty.)
+        TagObs { y, dt, w: base_w.clone(), extra_var: Vec::new(), base_w, ts_us: table.ts_us.clone(), rows: Vec::new() }
+    }
+
+    /// Table row of grid point `k`, or `None` for a pseudo-row (or past the end).
+    #[inline]
+    pub fn row(&self, k: usize) -> Option<usize> {
+        if self.rows.is_empty() {
+            (k < self.y.len()).then_some(k)
+        } else {
+            self.rows.get(k).copied().filter(|&r| r != NO_ROW)
         }
+    }
+
+    /// Table row of every grid point in order ([`TagObs::row`]).
+    #[inline]
+    pub fn rows(&self) -> impl Iterator<Item = Option<usize>> + '_ {
+        let identity = self.rows.is_empty();
+        (0..self.y.len()).map(move |k| if identity { Some(k) } else { Some(self.rows[k]).filter(|&r| r != NO_ROW) })
+    }
+
+    /// True when grid point k is table row k for every k (no pseudo-row).
+    #[inline]
+    pub fn rows_are_grid(&self) -> bool {
+        self.rows.is_empty()
+    }
+
+    /// Absolute extra variance of grid point `k` (0 without one).
+    #[inline]
+    fn extra(&self, k: usize) -> f64 {
+        self.extra_var.get(k).copied().unwrap_or(0.0)
     }
 
     fn push(&mut self, ts: i64, y: f64, w: f64, extra: f64, row: Option<usize>) {
@@ -214,7 +240,7 @@ impl TagObs {
         self.y.push(y);
         self.base_w.push(w);
         self.extra_var.push(extra);
-        self.row.push(row);
+        self.rows.push(row.unwrap_or(NO_ROW));
     }
 
     /// Number of grid points.
@@ -242,6 +268,11 @@ impl TagObs {
     /// observation noise variance `h` (the model's). Call before each fit or
     /// filter run when `h` changes.
     pub fn set_noise(&mut self, h: f64) {
+        if self.extra_var.is_empty() {
+            // (base + 0 / h is base.)
+            self.w.copy_from_slice(&self.base_w);
+            return;
+        }
         let h = h.max(1e-300);
         for k in 0..self.y.len() {
             self.w[k] = self.base_w[k] + self.extra_var[k] / h;
@@ -265,7 +296,7 @@ impl TagObs {
         for b in 0..blocks {
             let start = b * stride + (stride - len) / 2;
             for k in start..start + len {
-                o.push(self.ts_us[k], self.y[k], self.base_w[k], self.extra_var[k], self.row[k]);
+                o.push(self.ts_us[k], self.y[k], self.base_w[k], self.extra(k), self.row(k));
                 o.w.push(self.w[k]);
                 // Time to the next kept point: within a block one step;
                 // at a block's end, everything up to the next block.
@@ -800,7 +831,7 @@ mod tests {
         let t = table(vec![0, 10, 50, 60], vec![1.0, 2.0, 3.0, f64::NAN], Sampling::Exception { deadband: 0.5 });
         let mut o = TagObs::build(&t, 4.0, |_| true, 1_000);
         assert_eq!(o.ts_us, [0, 10, 20, 30, 40, 50, 60]);
-        assert_eq!(o.row, [Some(0), Some(1), None, None, None, Some(2), Some(3)]);
+        assert_eq!(o.rows().collect::<Vec<_>>(), [Some(0), Some(1), None, None, None, Some(2), Some(3)]);
         assert_eq!(&o.y[2..5], &[2.0, 2.0, 2.0]);
         assert!(o.y[6].is_nan());
         o.set_noise(0.25);
@@ -835,7 +866,10 @@ mod tests {
             assert_eq!(a.to_bits(), b.to_bits());
         }
         assert_eq!((&fast.dt, &fast.w, &fast.base_w), (&general.dt, &general.w, &general.base_w));
-        assert_eq!((&fast.extra_var, &fast.ts_us, &fast.row), (&general.extra_var, &general.ts_us, &general.row));
+        let extra = |o: &TagObs| (0..o.len()).map(|k| o.extra(k)).collect::<Vec<_>>();
+        assert_eq!((extra(&fast), &fast.ts_us), (extra(&general), &general.ts_us));
+        assert!(fast.rows().eq(general.rows()));
+        assert_eq!((fast.row(3), fast.row(200)), (Some(3), None));
         assert!(fast.y[150].is_nan() && fast.base_w[11] == 4.0 && fast.dt[119] == 31.0);
     }
 

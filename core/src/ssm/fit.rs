@@ -607,6 +607,27 @@ mod tests {
             Err(SsmError::NonFiniteObservation { index: 1, .. })
         ));
         assert!(matches!(fit1(&[]), Err(SsmError::AllMissing)));
+        // The first bad entry is the one named, past the vector width.
+        let mut y: Vec<f64> = (0..40).map(|t| t as f64).collect();
+        y[37] = f64::NEG_INFINITY;
+        y[39] = f64::INFINITY;
+        assert!(matches!(fit1(&y), Err(SsmError::NonFiniteObservation { index: 37, .. })));
+        let mut dt = vec![1.0; 40];
+        dt[23] = 0.0;
+        dt[30] = f64::NAN;
+        dt[39] = 0.0; // (the last step is never taken)
+        fn with_dt<'a>(y: &'a [f64], dt: &'a [f64]) -> Observations<'a> {
+            Observations { dt: Some(dt), ..Observations::univariate(y) }
+        }
+        assert!(matches!(with_dt(&y, &dt).validate(), Err(SsmError::NonFiniteObservation { index: 37, .. })));
+        let y: Vec<f64> = (0..40).map(|t| t as f64).collect();
+        assert!(matches!(with_dt(&y, &dt).validate(), Err(SsmError::BadTimeStep { index: 23, value }) if value == 0.0));
+        dt[23] = 1.0;
+        assert!(
+            matches!(with_dt(&y, &dt).validate(), Err(SsmError::BadTimeStep { index: 30, value }) if value.is_nan())
+        );
+        dt[30] = 1.0;
+        assert!(with_dt(&y, &dt).validate().is_ok());
         // A model with nothing to estimate.
         let c = spec("const");
         let y: Vec<f64> = (0..30).map(|t| t as f64).collect();

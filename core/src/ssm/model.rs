@@ -353,14 +353,22 @@ impl<'a> Observations<'a> {
     /// (NaN is a missing value).
     pub fn validate(&self) -> super::Result<()> {
         use super::SsmError;
-        if let Some((index, &value)) = self.y.iter().enumerate().find(|(_, v)| v.is_infinite()) {
-            return Err(SsmError::NonFiniteObservation { index, value });
+        // (Each check first runs over the whole array without stopping,
+        // which vectorises; the search for the index runs only on a failure.)
+        let infinite = |v: &f64| v.abs() == f64::INFINITY;
+        if self.y.iter().fold(false, |bad, v| bad | infinite(v)) {
+            if let Some((index, &value)) = self.y.iter().enumerate().find(|(_, v)| infinite(v)) {
+                return Err(SsmError::NonFiniteObservation { index, value });
+            }
         }
         if let Some(dt) = self.dt {
             assert_eq!(dt.len(), self.len(), "dt must have one entry per time point");
             let last = dt.len().saturating_sub(1);
-            if let Some((index, &value)) = dt[..last].iter().enumerate().find(|(_, v)| !(v.is_finite() && **v > 0.0)) {
-                return Err(SsmError::BadTimeStep { index, value });
+            let bad_step = |v: &f64| !(v.is_finite() && *v > 0.0);
+            if dt[..last].iter().fold(false, |bad, v| bad | bad_step(v)) {
+                if let Some((index, &value)) = dt[..last].iter().enumerate().find(|(_, v)| bad_step(v)) {
+                    return Err(SsmError::BadTimeStep { index, value });
+                }
             }
         }
         if let Some(w) = self.h_scale {

@@ -40,7 +40,7 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         &f.model,
         &obs,
         &GateOptions { spike: 4.45, shift_run: 3, level: level_index(&f.model), min_warm: 3 },
-        &|k| obs.row[k].is_some(),
+        &|k| obs.row(k).is_some(),
     );
     println!("shifts {:?} f_typical {:.3e}", g.shifts, g.f_typical);
     for spec_t in &args[3..] {

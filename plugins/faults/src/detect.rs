@@ -136,13 +136,24 @@ pub fn find(
     }
     let n = obs.len();
     let mut out = Findings::default();
-    // Grid point of each table row.
-    let mut k_of_row = vec![usize::MAX; table.len()];
-    for (k, r) in obs.row.iter().enumerate() {
-        if let Some(r) = r {
-            k_of_row[*r] = k;
+    // Grid point of each table row (the row itself on a grid without
+    // pseudo-rows).
+    let mut k_of_row = Vec::new();
+    if !obs.rows_are_grid() {
+        k_of_row = vec![usize::MAX; table.len()];
+        for (k, r) in obs.rows().enumerate() {
+            if let Some(r) = r {
+                k_of_row[r] = k;
+            }
         }
     }
+    let k_of = |row: usize| -> Option<usize> {
+        if k_of_row.is_empty() {
+            (row < n).then_some(row)
+        } else {
+            k_of_row.get(row).copied().filter(|&k| k != usize::MAX)
+        }
+    };
     let mut fault_at: Vec<Option<Fault>> = vec![None; n];
 
     // 1. Stuck: runs of identical readings on a regularly sampled tag.
@@ -150,7 +161,7 @@ pub fn find(
     let mut clean = std::borrow::Cow::Borrowed(obs);
     if table.sampling == Sampling::Regular {
         for d in stuck_runs(obs, table, cfg, f_lower_bound(&f.model)) {
-            if let Some(&k) = k_of_row.get(d.row).filter(|&&k| k != usize::MAX) {
+            if let Some(k) = k_of(d.row) {
                 fault_at[k] = Some(Fault::Stuck);
                 clean.to_mut().drop_point(k);
                 out.exclude.push(k);
@@ -162,7 +173,7 @@ pub fn find(
     // 2. The online pass: spikes and re-examined level shifts.
     let level = level_index(&f.model);
     let gopts = GateOptions { spike: cfg.spike, shift_run: cfg.shift_run, level, min_warm: 3 };
-    let can_gate = |k: usize| obs.row[k].is_some();
+    let can_gate = |k: usize| obs.row(k).is_some();
     // On most tags the gate rejects nothing: its pass is then the plain
     // filter's over `clean`, whose innovations are computed first, and a
     // smoother pass below that leaves nothing out reuses that filter. Only
@@ -199,10 +210,9 @@ pub fn find(
     // regularly sampled tag (a stored reading of an exception-reported tag
     // moved by more than the deadband by construction, so its innovations
     // are not a sample of the model's).
-    let noisy =
-        if table.sampling == Sampling::Regular { noise_windows(&g.e, &obs.row, cfg) } else { vec![(0.0, 0.0); n] };
-    for (k, &(stat, bound)) in noisy.iter().enumerate() {
-        let Some(row) = obs.row[k] else { continue };
+    let noisy = if table.sampling == Sampling::Regular { noise_windows(&g.e, obs, cfg) } else { Vec::new() };
+    for (k, stat, bound) in noisy {
+        let Some(row) = obs.row(k) else { continue };
         if stat <= 0.0 || fault_at[k].is_some() || !g.e[k].is_finite() {
             continue;
         }
@@ -244,7 +254,7 @@ pub fn find(
     let prior = fault_at.clone();
     // (The rare condition first: most readings are far inside the bound.)
     let is_spike =
-        |o: &[f64], k: usize| o[k].abs() > cfg.spike && o[k].is_finite() && obs.row[k].is_some() && prior[k].is_none();
+        |o: &[f64], k: usize| o[k].abs() > cfg.spike && o[k].is_finite() && obs.row(k).is_some() && prior[k].is_none();
     let second = left_out(&|k| fault_at[k].is_some() || is_spike(&o1, k));
     // The second pass changes nothing when it would leave out exactly the
     // readings the first one did.
@@ -252,20 +262,15 @@ pub fn find(
     drop(first);
     let (o2, sm) = if same { (o1, sm1) } else { spike_pass(&second)? };
     drop(second);
-    let mut cleaned = clean.y.clone();
     for k in 0..n {
         if !is_spike(&o2, k) {
-            if fault_at[k].is_some() {
-                cleaned[k] = f64::NAN;
-            }
             continue;
         }
-        cleaned[k] = f64::NAN;
         if in_transient(k) {
             vetoed += 1;
             continue;
         }
-        if let Some(row) = obs.row[k] {
+        if let Some(row) = obs.row(k) {
             fault_at[k] = Some(Fault::Spike);
             out.exclude.push(k);
             out.decisions.push(Decision {
@@ -309,6 +314,14 @@ pub fn find(
         }
     }
     candidates.sort_by_key(|c| c.0);
+    // The readings the step sizes are measured on: without faults and
+    // spikes (those vetoed as transients too).
+    let cleaned: Vec<f64> = if candidates.is_empty() {
+        Vec::new()
+    } else {
+        let drop = |k: usize| fault_at[k].is_some() || is_spike(&o2, k);
+        clean.y.iter().enumerate().map(|(k, &y)| if drop(k) { f64::NAN } else { y }).collect()
+    };
     let mut steps: Vec<(usize, f64, f64, f64)> = Vec::new(); // (k, stat, size, size_sd)
     for &(k, stat) in &candidates {
         let (size, size_sd) = step_size(&cleaned, k, 12);
@@ -339,7 +352,7 @@ pub fn find(
         let lo = k.saturating_sub(cfg.shift_run + 1);
         let hi = k + cfg.shift_run + 1;
         out.decisions.retain(|d| {
-            let kk = k_of_row.get(d.row).copied().unwrap_or(usize::MAX);
+            let kk = k_of(d.row).unwrap_or(usize::MAX);
             !(d.fault == Fault::Spike && kk >= lo && kk <= hi)
         });
         for kk in lo..hi.min(n) {
@@ -356,7 +369,7 @@ pub fn find(
             if fault_at[kk].is_some() {
                 continue;
             }
-            if let Some(row) = obs.row[kk] {
+            if let Some(row) = obs.row(kk) {
                 if obs.y[kk].is_finite() {
                     fault_at[kk] = Some(Fault::Step);
                     out.decisions.push(Decision { row, fault: Fault::Step, stat, threshold: cfg.step, size, size_sd });
@@ -410,7 +423,7 @@ fn step_size(y: &[f64], k: usize, w: usize) -> (f64, f64) {
 /// run (the value that froze) is not.
 fn stuck_runs(obs: &TagObs, table: &TagTable, cfg: &Config, f_min: f64) -> Vec<Decision> {
     let rows: Vec<usize> =
-        obs.row.iter().zip(&obs.y).filter(|(r, y)| r.is_some() && y.is_finite()).filter_map(|(r, _)| *r).collect();
+        obs.rows().zip(&obs.y).filter(|(r, y)| r.is_some() && y.is_finite()).filter_map(|(r, _)| r).collect();
     // Quantum: the smallest positive difference between consecutive readings
     // (without branches: a zero difference counts as infinite).
     let positive = |d: f64| if d > 0.0 { d } else { f64::INFINITY };
@@ -468,14 +481,14 @@ fn normal_cdf(x: f64) -> f64 {
     }
 }
 
-/// Noisy stretches: per grid point, (NIS / count, bound / count) when the
-/// window of `noise_w` real readings centred on it exceeds its chi-square
-/// bound and its innovations are not all on one side (a run on one side is a
-/// level change, not noise); (0, 0) otherwise.
-fn noise_windows(e: &[f64], row: &[Option<usize>], cfg: &Config) -> Vec<(f64, f64)> {
+/// Noisy stretches: (grid point, NIS / count, bound / count) for each grid
+/// point whose window of `noise_w` real readings centred on it exceeds its
+/// chi-square bound and whose innovations are not all on one side (a run on
+/// one side is a level change, not noise), in order.
+fn noise_windows(e: &[f64], obs: &TagObs, cfg: &Config) -> Vec<(usize, f64, f64)> {
     let n = e.len();
-    let mut out = vec![(0.0, 0.0); n];
-    let idx: Vec<usize> = (0..n).filter(|&k| row[k].is_some() && e[k].is_finite()).collect();
+    let mut out = Vec::new();
+    let idx: Vec<usize> = (0..n).filter(|&k| obs.row(k).is_some() && e[k].is_finite()).collect();
     let m = idx.len();
     let w = cfg.noise_w;
     if m < w {
@@ -490,43 +503,37 @@ fn noise_windows(e: &[f64], row: &[Option<usize>], cfg: &Config) -> Vec<(f64, f6
     }
     let bound = chi2_upper_quantile(cfg.noise_alpha, w as f64);
     let half = w / 2;
-    let mut flagged = vec![false; m];
-    let mut stats = vec![0.0; m];
-    for c in 0..m {
-        // The window centred on reading c (shifted inside at the ends).
+    // The window centred on reading c (shifted inside at the ends): its
+    // statistic when it is flagged.
+    let flagged_at = |c: usize| -> Option<f64> {
         let lo = c.saturating_sub(half).min(m - w);
         let hi = lo + w;
         let s = sum[hi] - sum[lo];
         let up = (pos[hi] - pos[lo]) as f64 / w as f64;
-        if s > bound && s / w as f64 >= cfg.noise_min_factor && (0.2..=0.8).contains(&up) {
-            flagged[c] = true;
-            stats[c] = s / w as f64;
-        }
-    }
-    // Trim each flagged stretch to its first and last clearly large
+        (s > bound && s / w as f64 >= cfg.noise_min_factor && (0.2..=0.8).contains(&up)).then_some(s / w as f64)
+    };
+    // Each flagged stretch is trimmed to its first and last clearly large
     // innovation (|e| > 2.5), so that the window's half-width does not
     // spill onto the healthy readings around it.
     let mut j = 0;
     while j < m {
-        if !flagged[j] {
+        if flagged_at(j).is_none() {
             j += 1;
             continue;
         }
         let a = j;
-        while j < m && flagged[j] {
+        while j < m && flagged_at(j).is_some() {
             j += 1;
         }
         let b = j;
         let first = (a..b).find(|&x| e[idx[x]].abs() > 2.5);
         let last = (a..b).rev().find(|&x| e[idx[x]].abs() > 2.5);
-        for x in a..b {
-            let keep = matches!((first, last), (Some(f), Some(l)) if x >= f && x <= l);
-            flagged[x] = keep;
-        }
-    }
-    for j in 0..m {
-        if flagged[j] {
-            out[idx[j]] = (stats[j], bound / w as f64);
+        if let (Some(f), Some(l)) = (first, last) {
+            for x in f..=l {
+                if let Some(stat) = flagged_at(x) {
+                    out.push((idx[x], stat, bound / w as f64));
+                }
+            }
         }
     }
     out

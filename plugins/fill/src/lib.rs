@@ -133,7 +133,7 @@ impl FillStep {
         };
         let mut obs = TagObs::build(table, work.settings.uncertain_factor, usable, self.max_quiet_us);
         for k in 0..obs.len() {
-            if let Some(i) = obs.row[k] {
+            if let Some(i) = obs.row(k) {
                 if table.fault[i] == Some(Fault::Noise) && table.stat[i].is_finite() {
                     let w = obs.w[k] * table.stat[i].max(1.0);
                     obs.set_base_weight(k, w);
@@ -160,17 +160,18 @@ impl FillStep {
         obs.set_noise(fitted.obs_noise());
         let (mean, sd) = fitted.smooth_signal(&obs).map_err(|e| e.to_string())?;
 
-        // 3. Lengths of the runs without an observation (gaps and rejected runs).
-        let mut hole_len = vec![0i64; n];
+        // 3. The runs of rows without an observation (gaps and rejected
+        // runs): (first row, end, length of the hole in time).
         let observed_row: Vec<bool> = {
             let mut v = vec![false; n];
-            for k in 0..obs.len() {
-                if let Some(i) = obs.row[k] {
+            for (k, r) in obs.rows().enumerate() {
+                if let Some(i) = r {
                     v[i] = obs.y[k].is_finite();
                 }
             }
             v
         };
+        let mut holes: Vec<(usize, usize, i64)> = Vec::new();
         let mut i = 0;
         while i < n {
             if observed_row[i] {
@@ -183,18 +184,25 @@ impl FillStep {
             }
             let before = if a > 0 { table.ts_us[a - 1] } else { table.ts_us[a] - period };
             let after = if i < n { table.ts_us[i] } else { table.ts_us[n - 1] + period };
-            let len = after - before - period;
-            hole_len[a..i].iter_mut().for_each(|l| *l = len);
+            holes.push((a, i, after - before - period));
         }
+        drop(observed_row);
 
         // 4. Write the estimates.
         let t = &mut work.table;
         let (mut filled, mut replaced, mut null_rows) = (0usize, 0usize, 0usize);
+        let mut hole = holes.iter().peekable();
         for k in 0..obs.len() {
-            let Some(i) = obs.row[k] else { continue };
+            let Some(i) = obs.row(k) else { continue };
             let (mean, sd) = (mean[k], sd[k]);
             t.std[i] = sd;
-            let short = hole_len[i] <= self.max_gap_us;
+            if !matches!(t.status[i], Status::Filled | Status::Rejected) {
+                continue;
+            }
+            // (Rows come in order: the holes before this one are passed.)
+            while hole.next_if(|h| h.1 <= i).is_some() {}
+            let hole_len = hole.peek().filter(|h| h.0 <= i).map_or(0, |h| h.2);
+            let short = hole_len <= self.max_gap_us;
             match t.status[i] {
                 Status::Filled => {
                     if short && mean.is_finite() {
