@@ -550,19 +550,27 @@ impl Fitted {
             let n = obs.len();
             let (mut e, mut v) = (vec![f64::NAN; n], vec![f64::NAN; n]);
             let warm_after = self.model.n_diffuse() + min_warm;
+            // The first time after `warm_after` updates (diffuse or regular).
+            let end = n.min(filt.kind.len()).min(filt.v.len()).min(filt.f.len());
             let mut updates = 0usize;
-            for t in 0..n.min(filt.kind.len()) {
-                match filt.kind[t] {
-                    ssm::filter::ElemKind::Regular => {
-                        if updates >= warm_after {
-                            v[t] = filt.v[t];
-                            e[t] = filt.v[t] / filt.f[t].sqrt();
-                        }
-                        updates += 1;
+            let mut warm = end;
+            for (t, kind) in filt.kind[..end].iter().enumerate() {
+                if matches!(kind, ssm::filter::ElemKind::Regular | ssm::filter::ElemKind::Diffuse) {
+                    if updates >= warm_after && *kind == ssm::filter::ElemKind::Regular {
+                        warm = t;
+                        break;
                     }
-                    ssm::filter::ElemKind::Diffuse => updates += 1,
-                    _ => {}
+                    updates += 1;
                 }
+            }
+            // From there on, every regular update's innovation (a select
+            // without branches, which vectorises).
+            let rows = e[warm..end].iter_mut().zip(&mut v[warm..end]);
+            let from = filt.kind[warm..end].iter().zip(&filt.v[warm..end]).zip(&filt.f[warm..end]);
+            for ((et, vt), ((kind, &fv), &ff)) in rows.zip(from) {
+                let regular = *kind == ssm::filter::ElemKind::Regular;
+                *vt = if regular { fv } else { f64::NAN };
+                *et = if regular { fv / ff.sqrt() } else { f64::NAN };
             }
             *pass = next_pass_id();
             Ok(Innovations { e, v, pass: *pass })
@@ -749,12 +757,16 @@ impl SignalMemo {
     }
 
     fn matches(&self, f: &Fitted, obs: &TagObs) -> bool {
+        // (The long arrays are compared without early exit, which vectorises.)
+        let same = |kept: &[u64], x: &[f64]| {
+            kept.len() == x.len() && kept.iter().zip(x).fold(true, |eq, (&a, b)| eq & (a == b.to_bits()))
+        };
         !self.mean.is_empty()
             && self.mean.len() == obs.len()
             && self.params.iter().copied().eq(bits(&f.params))
-            && self.y.iter().copied().eq(bits(&obs.y))
-            && self.w.iter().copied().eq(bits(&obs.w))
-            && self.dt.iter().copied().eq(bits(&obs.dt))
+            && same(&self.y, &obs.y)
+            && same(&self.w, &obs.w)
+            && same(&self.dt, &obs.dt)
             && self.spec == f.spec.to_string()
     }
 }
