@@ -319,8 +319,8 @@ pub fn find(
     let cleaned: Vec<f64> = if candidates.is_empty() {
         Vec::new()
     } else {
-        let drop = |k: usize| fault_at[k].is_some() || is_spike(&o2, k);
-        clean.y.iter().enumerate().map(|(k, &y)| if drop(k) { f64::NAN } else { y }).collect()
+        let set_aside = |k: usize| fault_at[k].is_some() || is_spike(&o2, k);
+        clean.y.iter().enumerate().map(|(k, &y)| if set_aside(k) { f64::NAN } else { y }).collect()
     };
     let mut steps: Vec<(usize, f64, f64, f64)> = Vec::new(); // (k, stat, size, size_sd)
     for &(k, stat) in &candidates {

@@ -102,6 +102,41 @@ fn rejected_readings_are_replaced_and_long_gaps_get_null_rows() {
     assert_eq!(w.report.extra["fill"]["no_estimate"], 200);
 }
 
+/// Each hole (a gap, a run of rejected readings, or both side by side) is
+/// judged on its own length against `max_gap`.
+#[test]
+fn each_hole_is_judged_on_its_own_length() {
+    let (_, y) = simulate(11, 1200);
+    // Gaps: 3 rows (15 s) at 200, 150 rows (12.5 min) at 500.
+    let missing = |i: &i64| (200..203).contains(i) || (500..650).contains(i);
+    let ts: Vec<i64> = (0..1200).filter(|i| !missing(i)).map(|i| i * PERIOD).collect();
+    let vals: Vec<f64> = (0..1200).filter(|i| !missing(i)).map(|i| y[i as usize]).collect();
+    let mut w = work(ts.clone(), vals, Sampling::Regular, "local-level");
+    let row_at = |i: i64| ts.iter().position(|&t| t == i * PERIOD).unwrap();
+    // Rejected: a run of 4 (20 s) at 300, a run of 130 (10.8 min) at 900,
+    // and one reading right after the short gap (the hole grows to 4 rows).
+    let rejected: Vec<usize> = (300..304).chain(900..1030).chain([203]).map(row_at).collect();
+    for &r in &rejected {
+        w.table.decide(r, Status::Rejected, Some(Fault::Spike), 2, 40.0, 4.5);
+        w.table.value[r] = f64::NAN;
+    }
+    fill(&mut w, serde_json::json!({"max_gap": "10m"}));
+    let t = &w.table;
+    let at = |i: i64| t.ts_us.iter().position(|&x| x == i * PERIOD).unwrap();
+    // Short holes get estimates.
+    assert!((200..203).all(|i| t.status[at(i)] == Status::Filled && t.value[at(i)].is_finite()));
+    assert!([203, 300, 301, 302, 303].iter().all(|&i| t.status[at(i)] == Status::Replaced));
+    // Long ones do not: null rows in the gap, the rejected run stays rejected.
+    assert!((500..650).all(|i| t.status[at(i)] == Status::Filled && t.value[at(i)].is_nan()));
+    assert!((900..1030).all(|i| t.status[at(i)] == Status::Rejected && t.std[at(i)].is_nan()));
+    // Every other row has its std; observed rows keep their values.
+    assert!((0..1200).filter(|i| !(500..650).contains(i) && !(900..1030).contains(i)).all(|i| t.std[at(i)] > 0.0));
+    assert_eq!(t.value[at(100)], y[100]);
+    assert_eq!(w.report.extra["fill"]["filled"], 3);
+    assert_eq!(w.report.extra["fill"]["replaced"], 5);
+    assert_eq!(w.report.extra["fill"]["no_estimate"], 150);
+}
+
 #[test]
 fn exception_tags_are_filled_within_the_deadband() {
     let mut rng = Rng::new(4);
