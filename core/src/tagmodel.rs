@@ -550,7 +550,8 @@ impl Fitted {
             let n = obs.len();
             let (mut e, mut v) = (vec![f64::NAN; n], vec![f64::NAN; n]);
             let warm_after = self.model.n_diffuse() + min_warm;
-            // The first time after `warm_after` updates (diffuse or regular).
+            // The first regular update after `warm_after` updates (diffuse or
+            // regular) have been taken in.
             let end = n.min(filt.kind.len()).min(filt.v.len()).min(filt.f.len());
             let mut updates = 0usize;
             let mut warm = end;
