@@ -765,6 +765,30 @@ pub(crate) fn two_state_system(sys: &super::model::StepSystem) -> [f64; 7] {
     [t[0], t[1], t[2], t[3], q[0], 0.5 * (q[1] + q[2]), q[3]]
 }
 
+/// The shape of a two-state transition T, which the two-state loops of the
+/// filter and the smoother take once per step system (not per time): with a
+/// diagonal T the products with its zeros drop out, and with a random-walk
+/// level (T00 = 1) the multiplications by one too: the same arithmetic on a
+/// shorter chain of dependent operations.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum TwoStateShape {
+    /// Diagonal with T00 = 1.
+    RandomWalkLevel,
+    Diagonal,
+    Full,
+}
+
+impl TwoStateShape {
+    /// The shape of T with entries t00, t01 (row 0, column 1) and t10.
+    pub(crate) fn of(t00: f64, t01: f64, t10: f64) -> Self {
+        match (t01 == 0.0 && t10 == 0.0, t00 == 1.0) {
+            (true, true) => TwoStateShape::RandomWalkLevel,
+            (true, false) => TwoStateShape::Diagonal,
+            (false, _) => TwoStateShape::Full,
+        }
+    }
+}
+
 /// A S A' for a 2 x 2 matrix A = [a00, a01, a10, a11] (row by row) and a
 /// symmetric S = [s00, s01, s11]; returns the same three entries.
 #[inline]
@@ -826,6 +850,7 @@ fn run_two_states<const UNIT_Z: bool>(
     let (mut a0, mut a1) = (a[0], a[1]);
     let (mut p00, mut p01, mut p11) = (p[0], 0.5 * (p[1] + p[2]), p[3]);
     let [mut t00, mut t10, mut t01, mut t11, mut q00, mut q01, mut q11] = two_state_system(sys);
+    let mut shape = TwoStateShape::of(t00, t01, t10);
     let (mut sum_v2_f, mut nobs) = (0.0, 0usize);
     let mut t = t0;
     let mut converged = false;
@@ -898,22 +923,25 @@ fn run_two_states<const UNIT_Z: bool>(
         if dt != *cur_dt {
             model.system_for_step(dt, sys);
             [t00, t10, t01, t11, q00, q01, q11] = two_state_system(sys);
+            shape = TwoStateShape::of(t00, t01, t10);
             *cur_dt = dt;
             plain = false;
         }
         // T P T' + RQR' on the symmetric P.
-        let [s00, s01, s11] = if UNIT_Z && t01 == 0.0 && t10 == 0.0 {
-            (a0, a1) = (t00 * a0 + c0, t11 * a1 + c1);
-            if t00 == 1.0 {
-                // A random-walk level (x * 1 = x): two multiplications
-                // fewer on the chain from one P to the next.
+        // (With unit loadings only: the other copy keeps the general form.)
+        let [s00, s01, s11] = match (UNIT_Z, shape) {
+            (true, TwoStateShape::RandomWalkLevel) => {
+                (a0, a1) = (t00 * a0 + c0, t11 * a1 + c1);
                 [p00, p01 * t11, (t11 * p11) * t11]
-            } else {
+            }
+            (true, TwoStateShape::Diagonal) => {
+                (a0, a1) = (t00 * a0 + c0, t11 * a1 + c1);
                 [(t00 * p00) * t00, (t00 * p01) * t11, (t11 * p11) * t11]
             }
-        } else {
-            (a0, a1) = (t00 * a0 + t01 * a1 + c0, t10 * a0 + t11 * a1 + c1);
-            congruence2([t00, t01, t10, t11], [p00, p01, p11])
+            _ => {
+                (a0, a1) = (t00 * a0 + t01 * a1 + c0, t10 * a0 + t11 * a1 + c1);
+                congruence2([t00, t01, t10, t11], [p00, p01, p11])
+            }
         };
         p00 = clear_negative(s00 + q00);
         p01 = s01 + q01;

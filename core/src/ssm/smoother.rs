@@ -34,7 +34,7 @@
 
 use nalgebra::{allocator::Allocator, Const, DefaultAllocator, Dim, Dyn, OMatrix, OVector, U1};
 
-use super::filter::{clear_negative, congruence2, omat, ovec, tidy, ElemKind, FilterOutput, Path};
+use super::filter::{clear_negative, congruence2, omat, ovec, tidy, ElemKind, FilterOutput, Path, TwoStateShape};
 use super::model::{Observations, StateSpace};
 use super::scalar;
 
@@ -414,6 +414,7 @@ fn run_two_states<const UNIT_Z: bool>(
         (t[0], t[1], t[2], t[3])
     };
     let (mut t00, mut t10, mut t01, mut t11) = load(sys);
+    let mut shape = TwoStateShape::of(t00, t01, t10);
     let (mut r0, mut r1) = (0.0, 0.0);
     let (mut n00, mut n01, mut n11) = (0.0, 0.0, 0.0);
     let keep_aux = out.keep_aux;
@@ -488,20 +489,22 @@ fn run_two_states<const UNIT_Z: bool>(
             if dt != *cur_dt {
                 model.system_for_step(dt, sys);
                 (t00, t10, t01, t11) = load(sys);
+                shape = TwoStateShape::of(t00, t01, t10);
                 *cur_dt = dt;
             }
-            if t01 == 0.0 && t10 == 0.0 && t00 == 1.0 {
-                // A random-walk level and a diagonal T (x * 1 = x, and the
-                // products with the zeros drop out).
-                r1 *= t11;
-                [n01, n11] = [n01 * t11, (t11 * n11) * t11];
-            } else if t01 == 0.0 && t10 == 0.0 {
-                // A diagonal T (the products with its zeros drop out).
-                (r0, r1) = (t00 * r0, t11 * r1);
-                [n00, n01, n11] = [(t00 * n00) * t00, (t00 * n01) * t11, (t11 * n11) * t11];
-            } else {
-                (r0, r1) = (t00 * r0 + t10 * r1, t01 * r0 + t11 * r1);
-                [n00, n01, n11] = congruence2([t00, t10, t01, t11], [n00, n01, n11]);
+            match shape {
+                TwoStateShape::RandomWalkLevel => {
+                    r1 *= t11;
+                    [n01, n11] = [n01 * t11, (t11 * n11) * t11];
+                }
+                TwoStateShape::Diagonal => {
+                    (r0, r1) = (t00 * r0, t11 * r1);
+                    [n00, n01, n11] = [(t00 * n00) * t00, (t00 * n01) * t11, (t11 * n11) * t11];
+                }
+                TwoStateShape::Full => {
+                    (r0, r1) = (t00 * r0 + t10 * r1, t01 * r0 + t11 * r1);
+                    [n00, n01, n11] = congruence2([t00, t10, t01, t11], [n00, n01, n11]);
+                }
             }
         }
     }

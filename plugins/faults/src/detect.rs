@@ -232,20 +232,20 @@ pub fn find(
     // readings left out, then with every reading found in the first pass
     // left out.
     // (The passes differ only in which readings they leave out, so each
-    // has its own copy of the observations, not of the whole `clean`.)
-    let left_out = |drop: &dyn Fn(usize) -> bool| -> Vec<f64> {
-        clean.y.iter().enumerate().map(|(k, &y)| if drop(k) { f64::NAN } else { y }).collect()
+    // has its own copy of the observations, not of the whole `clean`; a
+    // pass that leaves no reading out has none and reads `clean.y`.)
+    let left_out = |drop: &dyn Fn(usize) -> bool| -> Option<Vec<f64>> {
+        let any = clean.y.iter().enumerate().any(|(k, y)| !y.is_nan() && drop(k));
+        any.then(|| clean.y.iter().enumerate().map(|(k, &y)| if drop(k) { f64::NAN } else { y }).collect())
     };
     let first = left_out(&|k| fault_at[k].is_some() || g.gated[k]);
-    let spike_pass = |y: &[f64]| -> Result<(Vec<f64>, tagwright::tagmodel::Smoothed), String> {
+    let spike_pass = |kept: &Option<Vec<f64>>| -> Result<(Vec<f64>, tagwright::tagmodel::Smoothed), String> {
         // The filter pass of `plain` is this one's when it leaves nothing
         // out (the first pass on most tags; the second one after a gated
         // reading that the smoother did not confirm as a spike).
-        let same = y.iter().zip(&clean.y).all(|(a, b)| a.to_bits() == b.to_bits());
-        let mut sm = if same {
-            f.smooth_with_outliers_after(&clean, &plain)
-        } else {
-            f.smooth_with_outliers_of(&clean, y, &clean.y)
+        let mut sm = match kept {
+            None => f.smooth_with_outliers_after(&clean, &plain),
+            Some(y) => f.smooth_with_outliers_of(&clean, y, &clean.y),
         }
         .map_err(|e| e.to_string())?;
         Ok((std::mem::take(&mut sm.outlier), sm))
@@ -258,7 +258,8 @@ pub fn find(
     let second = left_out(&|k| fault_at[k].is_some() || is_spike(&o1, k));
     // The second pass changes nothing when it would leave out exactly the
     // readings the first one did.
-    let same = (0..n).all(|k| second[k].is_nan() == first[k].is_nan());
+    let (y2, y1) = (second.as_deref().unwrap_or(&clean.y), first.as_deref().unwrap_or(&clean.y));
+    let same = y2.iter().zip(y1).all(|(a, b)| a.is_nan() == b.is_nan());
     drop(first);
     let (o2, sm) = if same { (o1, sm1) } else { spike_pass(&second)? };
     drop(second);
