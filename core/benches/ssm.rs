@@ -7,7 +7,10 @@
 use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion, Throughput};
 use std::hint::black_box;
 use tagwright::rng::Rng;
-use tagwright::ssm::{arma, filter, fit, smooth, FilterOptions, FitOptions, ModelSpec, Observations, Path};
+use tagwright::ssm::{
+    arma, filter, filter_into, fit, smooth, smooth_into, FilterOptions, FilterOutput, FitOptions, ModelSpec,
+    Observations, Path, SmootherOutput,
+};
 
 fn local_level_series(n: usize, seed: u64) -> Vec<f64> {
     let mut rng = Rng::new(seed);
@@ -62,6 +65,35 @@ fn filter_smooth(c: &mut Criterion) {
     g.finish();
 }
 
+/// The two-state loops as the cleaning chain runs them: a level + AR(1) at
+/// the chain benchmark's parameters over one 12 h shift at 1 s (43,200
+/// points, 40 of them missing), the filter storing its arrays without the
+/// filtered ones, and the smoother keeping the signal, its variance, the
+/// auxiliary and the deletion residuals (the lean arrays). Filter and
+/// smoother are timed apart.
+fn two_state_loops(c: &mut Criterion) {
+    let n = 43_200;
+    let mut rng = Rng::new(5);
+    let (ar, _) = arma::simulate(&[0.995], &[], 0.01, n, &mut rng).unwrap();
+    let y: Vec<f64> = ar
+        .iter()
+        .enumerate()
+        .map(|(t, x)| if t % 1080 == 7 { f64::NAN } else { 5.0 + x + 0.05 * rng.normal() })
+        .collect();
+    let obs = Observations::univariate(&y);
+    let model = "local-level+arma(1,0)".parse::<ModelSpec>().unwrap().build(&[0.0025, 1e-10, 0.995, 0.01]).unwrap();
+    let opts = FilterOptions { path: Path::Fixed, steady_tol: 0.0, store: true };
+    let mut f = FilterOutput { skip_filtered: true, ..Default::default() };
+    let mut g = c.benchmark_group("level_ar1_43k");
+    g.throughput(Throughput::Elements(n as u64));
+    g.sample_size(30);
+    g.bench_function("filter", |b| b.iter(|| filter_into(&model, &obs, &opts, black_box(&mut f)).unwrap()));
+    filter_into(&model, &obs, &opts, &mut f).unwrap();
+    let mut s = SmootherOutput { keep_aux: true, keep_del: true, lean: true, ..Default::default() };
+    g.bench_function("smoother", |b| b.iter(|| smooth_into(&model, &obs, &f, black_box(&mut s))));
+    g.finish();
+}
+
 fn fits(c: &mut Criterion) {
     let y = local_level_series(10_000, 3);
     let obs = Observations::univariate(&y);
@@ -81,5 +113,5 @@ fn fits(c: &mut Criterion) {
     g.finish();
 }
 
-criterion_group!(benches, filter_smooth, fits);
+criterion_group!(benches, filter_smooth, two_state_loops, fits);
 criterion_main!(benches);

@@ -226,13 +226,23 @@ fn aux_of(r: f64, n: f64) -> f64 {
     }
 }
 
+/// [`aux_of`] of two states at once (written lane by lane so that the
+/// square roots and divisions can share vector instructions).
+#[inline]
+fn aux_pair(r: [f64; 2], n: [f64; 2]) -> [f64; 2] {
+    let s = [n[0].sqrt(), n[1].sqrt()];
+    let q = [r[0] / s[0], r[1] / s[1]];
+    [if n[0] > 0.0 { q[0] } else { f64::NAN }, if n[1] > 0.0 { q[1] } else { f64::NAN }]
+}
+
 /// u / sqrt(D) of [`SmootherOutput::del`] from the innovation v, its
 /// variance f, k' r and k' N k; NaN where D is not positive.
 #[inline]
 pub(crate) fn deletion_residual(v: f64, f: f64, kr: f64, knk: f64) -> f64 {
-    let d = 1.0 / f + knk / (f * f);
-    if d > 0.0 {
-        (v - kr) / f / d.sqrt()
+    // u / sqrt(D) = ((v - k'r)/F) / sqrt((F + k'Nk)/F^2), F > 0.
+    let d = f + knk;
+    if d > 0.0 && f > 0.0 {
+        (v - kr) / d.sqrt()
     } else {
         f64::NAN
     }
@@ -396,8 +406,12 @@ where
 
 /// The backward recursion of [`run`] for a two-state, one-element model
 /// from the last time down to the end of the diffuse phase, with r and the
-/// symmetric N held as plain numbers. Returns r and N (n00, n01, n11) after
-/// the step back from the first time it handled.
+/// symmetric N held as plain numbers, the step back through T and the
+/// update at each time folded into one product (M'NM with M = T L), and
+/// with `lean` only the signal's mean and variance formed (not the smoothed
+/// state and covariance). The results agree with the matrix code's to
+/// rounding. Returns r and N (n00, n01, n11) after the step back from the
+/// first time it handled.
 fn run_two_states<const UNIT_Z: bool>(
     model: &StateSpace,
     obs: &Observations,
@@ -415,98 +429,119 @@ fn run_two_states<const UNIT_Z: bool>(
     };
     let (mut t00, mut t10, mut t01, mut t11) = load(sys);
     let mut shape = TwoStateShape::of(t00, t01, t10);
+    // r and N after the observation at t + 1 (zero past the last time).
     let (mut r0, mut r1) = (0.0, 0.0);
     let (mut n00, mut n01, mut n11) = (0.0, 0.0, 0.0);
     let keep_aux = out.keep_aux;
     let lean = out.lean;
     let d_sig = model.d[0];
+    // r' = T'r and N' = T'NT, the step back through T alone.
+    let step_back = |shape, [t00, t10, t01, t11]: [f64; 4], [r0, r1]: [f64; 2], [n00, n01, n11]: [f64; 3]| match shape {
+        TwoStateShape::RandomWalkLevel => ([r0, r1 * t11], [n00, n01 * t11, (t11 * n11) * t11]),
+        TwoStateShape::Diagonal => ([t00 * r0, t11 * r1], [(t00 * n00) * t00, (t00 * n01) * t11, (t11 * n11) * t11]),
+        TwoStateShape::Full => {
+            ([t00 * r0 + t10 * r1, t01 * r0 + t11 * r1], congruence2([t00, t10, t01, t11], [n00, n01, n11]))
+        }
+    };
     for t in (filt.diffuse_end..n).rev() {
-        if filt.kind[t] == ElemKind::Regular {
-            let (v, f) = (filt.v[t], filt.f[t]);
-            let (k0, k1) = (filt.k[2 * t], filt.k[2 * t + 1]);
-            let u0 = n00 * k0 + n01 * k1;
-            let u1 = n01 * k0 + n11 * k1;
-            let s = k0 * u0 + k1 * u1;
-            let kr = k0 * r0 + k1 * r1;
-            if keep_del {
-                out.del[t] = deletion_residual(v, f, kr, s);
-            }
-            // 1/F does not depend on r or N, so no division sits on the
-            // chain from one time's r and N to the next.
-            let finv = 1.0 / f;
-            let g = (v - kr) * finv;
-            let c = (s * finv + 1.0) * finv;
-            if UNIT_Z {
-                r0 += g;
-                r1 += g;
-                n00 += -2.0 * u0 * finv + c;
-                n01 += -(u1 + u0) * finv + c;
-                n11 += -2.0 * u1 * finv + c;
-            } else {
-                r0 += z0 * g;
-                r1 += z1 * g;
-                n00 += -2.0 * z0 * u0 * finv + z0 * z0 * c;
-                n01 += -(z0 * u1 + u0 * z1) * finv + z0 * z1 * c;
-                n11 += -2.0 * z1 * u1 * finv + z1 * z1 * c;
-            }
-        }
-        // Smoothed state and covariance: a + P r, P - P N P.
-        let pm = &filt.p_pred[4 * t..4 * t + 4];
-        let (p00, p10, p01, p11) = (pm[0], pm[1], pm[2], pm[3]);
-        let (a0, a1) = (filt.a_pred[2 * t], filt.a_pred[2 * t + 1]);
-        let s0 = a0 + p00 * r0 + p01 * r1;
-        let s1 = a1 + p10 * r0 + p11 * r1;
-        let m00 = n00 * p00 + n01 * p10;
-        let m01 = n00 * p01 + n01 * p11;
-        let m10 = n01 * p00 + n11 * p10;
-        let m11 = n01 * p01 + n11 * p11;
-        let v00 = p00 - (p00 * m00 + p01 * m10);
-        let v01 = p01 - (p00 * m01 + p01 * m11);
-        let v10 = p10 - (p10 * m00 + p11 * m10);
-        let v11 = p11 - (p10 * m01 + p11 * m11);
-        let off = 0.5 * (v01 + v10);
-        let cov = [clear_negative(v00), off, off, clear_negative(v11)];
-        if lean {
-            out.sig_mean[t] = signal_of(&[z0, z1], d_sig, &[s0, s1]);
-            out.sig_var[t] = signal_var_of(&[z0, z1], &cov);
-            if keep_aux {
-                out.aux[2 * t] = aux_of(r0, n00);
-                out.aux[2 * t + 1] = aux_of(r1, n11);
-            }
-        } else {
-            out.state[2 * t] = s0;
-            out.state[2 * t + 1] = s1;
-            out.cov[4 * t..4 * t + 4].copy_from_slice(&cov);
-            if keep_aux {
-                out.r[2 * t] = r0;
-                out.r[2 * t + 1] = r1;
-                out.n_cum[4 * t..4 * t + 4].copy_from_slice(&[n00, n01, n01, n11]);
-            }
-        }
-        // Step back through T_{t-1}: r <- T'r, N <- T'NT.
-        if t > 0 {
-            let dt = obs.step(t - 1);
+        // T_t, the step from t to t + 1 (at the last time r and N are zero
+        // and the loaded T stands in).
+        if t + 1 < n {
+            let dt = obs.step(t);
             if dt != *cur_dt {
                 model.system_for_step(dt, sys);
                 (t00, t10, t01, t11) = load(sys);
                 shape = TwoStateShape::of(t00, t01, t10);
                 *cur_dt = dt;
             }
-            match shape {
-                TwoStateShape::RandomWalkLevel => {
-                    r1 *= t11;
-                    [n01, n11] = [n01 * t11, (t11 * n11) * t11];
-                }
-                TwoStateShape::Diagonal => {
-                    (r0, r1) = (t00 * r0, t11 * r1);
-                    [n00, n01, n11] = [(t00 * n00) * t00, (t00 * n01) * t11, (t11 * n11) * t11];
-                }
-                TwoStateShape::Full => {
-                    (r0, r1) = (t00 * r0 + t10 * r1, t01 * r0 + t11 * r1);
-                    [n00, n01, n11] = congruence2([t00, t10, t01, t11], [n00, n01, n11]);
-                }
+        }
+        if filt.kind[t] == ElemKind::Regular {
+            // With L = I - k z/F and the gain's image g = T k, the step
+            // back and the update at t fold into one product with
+            // M = T L = T - g z/F:
+            //   r <- M'r + z' v/F,   N <- M'NM + z'z/F,
+            // whose coefficients do not depend on r or N, so the chain from
+            // one time's N to the next is a product and two sums. The
+            // deletion residual reads k'r and k'Nk before the update as
+            // g'r and g'Ng.
+            let (v, f) = (filt.v[t], filt.f[t]);
+            let (k0, k1) = (filt.k[2 * t], filt.k[2 * t + 1]);
+            let finv = 1.0 / f;
+            let (g0, g1) = match shape {
+                TwoStateShape::RandomWalkLevel => (k0, t11 * k1),
+                TwoStateShape::Diagonal => (t00 * k0, t11 * k1),
+                TwoStateShape::Full => (t00 * k0 + t01 * k1, t10 * k0 + t11 * k1),
+            };
+            if keep_del {
+                let kr = g0 * r0 + g1 * r1;
+                let knk = g0 * (n00 * g0 + n01 * g1) + g1 * (n01 * g0 + n11 * g1);
+                out.del[t] = deletion_residual(v, f, kr, knk);
+            }
+            let (gf0, gf1) = (g0 * finv, g1 * finv);
+            let (m00, m01, m10, m11) = if UNIT_Z {
+                (t00 - gf0, t01 - gf0, t10 - gf1, t11 - gf1)
+            } else {
+                (t00 - gf0 * z0, t01 - gf0 * z1, t10 - gf1 * z0, t11 - gf1 * z1)
+            };
+            let e = v * finv;
+            let (ze0, ze1) = if UNIT_Z { (e, e) } else { (z0 * e, z1 * e) };
+            let (zz00, zz01, zz11) =
+                if UNIT_Z { (finv, finv, finv) } else { (z0 * z0 * finv, z0 * z1 * finv, z1 * z1 * finv) };
+            (r0, r1) = ((m00 * r0 + m10 * r1) + ze0, (m01 * r0 + m11 * r1) + ze1);
+            let (x00, x01) = (n00 * m00 + n01 * m10, n00 * m01 + n01 * m11);
+            let (x10, x11) = (n01 * m00 + n11 * m10, n01 * m01 + n11 * m11);
+            (n00, n01, n11) =
+                ((m00 * x00 + m10 * x10) + zz00, (m00 * x01 + m10 * x11) + zz01, (m01 * x01 + m11 * x11) + zz11);
+        } else if t + 1 < n {
+            ([r0, r1], [n00, n01, n11]) = step_back(shape, [t00, t10, t01, t11], [r0, r1], [n00, n01, n11]);
+        }
+        let pm = &filt.p_pred[4 * t..4 * t + 4];
+        let (p00, p10, p01, p11) = (pm[0], pm[1], pm[2], pm[3]);
+        let (a0, a1) = (filt.a_pred[2 * t], filt.a_pred[2 * t + 1]);
+        if lean {
+            // The signal alone: with w = P z', z a_hat + d = (z a + d) + w'r
+            // and z V z' = z P z' - w'N w (V = P - P N P), not below zero.
+            let (w0, w1) = if UNIT_Z { (p00 + p01, p10 + p11) } else { (p00 * z0 + p01 * z1, p10 * z0 + p11 * z1) };
+            let (za, zw) = if UNIT_Z { (a0 + a1, w0 + w1) } else { (z0 * a0 + z1 * a1, z0 * w0 + z1 * w1) };
+            out.sig_mean[t] = (za + d_sig) + (w0 * r0 + w1 * r1);
+            out.sig_var[t] = (zw - (w0 * (n00 * w0 + n01 * w1) + w1 * (n01 * w0 + n11 * w1))).max(0.0);
+            if keep_aux {
+                out.aux[2 * t..2 * t + 2].copy_from_slice(&aux_pair([r0, r1], [n00, n11]));
+            }
+        } else {
+            // Smoothed state and covariance: a + P r, P - P N P.
+            let s0 = a0 + p00 * r0 + p01 * r1;
+            let s1 = a1 + p10 * r0 + p11 * r1;
+            let m00 = n00 * p00 + n01 * p10;
+            let m01 = n00 * p01 + n01 * p11;
+            let m10 = n01 * p00 + n11 * p10;
+            let m11 = n01 * p01 + n11 * p11;
+            let v00 = p00 - (p00 * m00 + p01 * m10);
+            let v01 = p01 - (p00 * m01 + p01 * m11);
+            let v10 = p10 - (p10 * m00 + p11 * m10);
+            let v11 = p11 - (p10 * m01 + p11 * m11);
+            let off = 0.5 * (v01 + v10);
+            out.state[2 * t] = s0;
+            out.state[2 * t + 1] = s1;
+            out.cov[4 * t..4 * t + 4].copy_from_slice(&[clear_negative(v00), off, off, clear_negative(v11)]);
+            if keep_aux {
+                out.r[2 * t] = r0;
+                out.r[2 * t + 1] = r1;
+                out.n_cum[4 * t..4 * t + 4].copy_from_slice(&[n00, n01, n01, n11]);
             }
         }
+    }
+    // The step back through T_{t-1} from the first time handled.
+    let first = filt.diffuse_end;
+    if first > 0 && first < n {
+        let dt = obs.step(first - 1);
+        if dt != *cur_dt {
+            model.system_for_step(dt, sys);
+            (t00, t10, t01, t11) = load(sys);
+            shape = TwoStateShape::of(t00, t01, t10);
+            *cur_dt = dt;
+        }
+        ([r0, r1], [n00, n01, n11]) = step_back(shape, [t00, t10, t01, t11], [r0, r1], [n00, n01, n11]);
     }
     ([r0, r1], [n00, n01, n11])
 }
