@@ -854,6 +854,18 @@ fn run_two_states<const UNIT_Z: bool>(
     let [mut t00, mut t10, mut t01, mut t11, mut q00, mut q01, mut q11] = two_state_system(sys);
     let mut shape = TwoStateShape::of(t00, t01, t10);
     let (mut sum_v2_f, mut nobs) = (0.0, 0usize);
+    // z P z' for the predicted P (with unit loadings p00 + 2 p01 + p11,
+    // summed in two independent pairs).
+    let zpz = |p00: f64, p01: f64, p11: f64| {
+        if UNIT_Z {
+            (p00 + p11) + (p01 + p01)
+        } else {
+            z0 * (p00 * z0 + p01 * z1) + z1 * (p01 * z0 + p11 * z1)
+        }
+    };
+    let h_at = |t: usize| if t < n { h0 * obs.weight(t, 0) } else { h0 };
+    // F at time t, z P z' + h, prepared by the step before (below).
+    let mut f_next = zpz(p00, p01, p11) + h_at(t0);
     let mut t = t0;
     let mut converged = false;
     while t < n {
@@ -899,6 +911,15 @@ fn run_two_states<const UNIT_Z: bool>(
                 )
             }
         };
+        // The next F without this reading's update, z (T P T' + Q) z' +
+        // h_{t+1}, and the image of the gain on it, z g: with the update the
+        // next F is that minus (z g)^2/F, one product and one subtraction
+        // after 1/F, so the chain from one 1/F to the next does not pass
+        // through P.
+        let f_plain = zpz(c00, c01, c11) + h_at(t + 1);
+        let zg = if UNIT_Z { g0 + g1 } else { z0 * g0 + z1 * g1 };
+        let f = f_next;
+        f_next = f_plain;
         let y = obs.y[t];
         // The filtered state and covariance when kept: the predicted ones
         // unless the reading updates them (below).
@@ -919,13 +940,7 @@ fn run_two_states<const UNIT_Z: bool>(
                 plain = false;
             }
             let h = h0 * w;
-            // (With unit loadings F = p00 + 2 p01 + p11 + h, summed in
-            // two independent pairs.)
-            let (v, f) = if UNIT_Z {
-                (y - (a0 + a1) - d0, (p00 + p11) + (p01 + p01 + h))
-            } else {
-                (y - (z0 * a0 + z1 * a1) - d0, z0 * k0 + z1 * k1 + h)
-            };
+            let v = if UNIT_Z { (y - d0) - (a0 + a1) } else { (y - d0) - (z0 * a0 + z1 * a1) };
             if f.is_nan() || f <= 1e-13 * (h + 0f64.max(p00).max(p11)).max(f64::MIN_POSITIVE) {
                 if store {
                     out.v[t] = v;
@@ -947,6 +962,7 @@ fn run_two_states<const UNIT_Z: bool>(
                 p00 = c00 - (g0 * g0) * finv;
                 p01 = c01 - (g0 * g1) * finv;
                 p11 = c11 - (g1 * g1) * finv;
+                f_next = f_plain - (zg * zg) * finv;
                 sum_v2_f += v * e;
                 logs.add(f);
                 nobs += 1;
@@ -963,8 +979,12 @@ fn run_two_states<const UNIT_Z: bool>(
             out.a_filt[2 * t..2 * t + 2].copy_from_slice(&fa);
             out.p_filt[4 * t..4 * t + 4].copy_from_slice(&[fp[0], fp[1], fp[1], fp[2]]);
         }
-        p00 = clear_negative(p00);
-        p11 = clear_negative(p11);
+        if p00 < 0.0 || p11 < 0.0 {
+            // Round-off below zero is cleared, and F taken from the cleared P.
+            p00 = clear_negative(p00);
+            p11 = clear_negative(p11);
+            f_next = zpz(p00, p01, p11) + h_at(t + 1);
+        }
         t += 1;
         if allow_steady && plain && dt == 1.0 {
             let scale = p00.abs().max(p01.abs()).max(p11.abs()).max(f64::MIN_POSITIVE);
