@@ -69,8 +69,10 @@ pub struct SmootherOutput {
     /// Set before smoothing (one-element models) to keep only what callers
     /// of the signal read, instead of `state`, `cov`, `r` and `n_cum` (which
     /// stay empty): `sig_mean`, `sig_var` and, with `keep_aux`, `aux`. The
-    /// values are the same as those computed from the full arrays; a long
-    /// window then stores 2 to 4 numbers per time instead of 13.
+    /// values are those computed from the full arrays (bit for bit, except
+    /// the two-state loop's signal and its variance, which it forms from
+    /// P z' directly: equal to rounding); a long window then stores 2 to 4
+    /// numbers per time instead of 13.
     pub lean: bool,
     /// With `lean`: the smoothed signal z a_hat_t + d (n).
     pub sig_mean: Vec<f64>,
