@@ -496,10 +496,10 @@ fn run_until<D: Dim>(
                 return;
             }
             // A sum of two one-state blocks (z = [1, 1]; T diagonal, which
-            // the loop checks at each step) runs a copy with those entries
-            // known: the same arithmetic, since x * 1 = x and the products
-            // with the zeros drop out, on a shorter chain of dependent
-            // operations.
+            // the loop reads off each step system) runs a copy with those
+            // entries known: the same arithmetic, since x * 1 = x and the
+            // products with the zeros drop out, on a shorter chain of
+            // dependent operations.
             let unit_z = zrows[0].iter().all(|&z| z == 1.0);
             let run = if unit_z { run_two_states::<true> } else { run_two_states::<false> };
             let (tn, converged) = run(
@@ -854,13 +854,15 @@ fn run_two_states<const UNIT_Z: bool>(
     let [mut t00, mut t10, mut t01, mut t11, mut q00, mut q01, mut q11] = two_state_system(sys);
     let mut shape = TwoStateShape::of(t00, t01, t10);
     let (mut sum_v2_f, mut nobs) = (0.0, 0usize);
-    // z P z' for the predicted P (with unit loadings p00 + 2 p01 + p11,
-    // summed in two independent pairs).
+    // z P z' for the predicted P, summed in two independent pairs (with
+    // unit loadings p00 + 2 p01 + p11; the general form reduces to the same
+    // operations at z = [1, 1]).
     let zpz = |p00: f64, p01: f64, p11: f64| {
         if UNIT_Z {
             (p00 + p11) + (p01 + p01)
         } else {
-            z0 * (p00 * z0 + p01 * z1) + z1 * (p01 * z0 + p11 * z1)
+            let c = z0 * z1 * p01;
+            (z0 * z0 * p00 + z1 * z1 * p11) + (c + c)
         }
     };
     let h_at = |t: usize| if t < n { h0 * obs.weight(t, 0) } else { h0 };

@@ -9,10 +9,12 @@
 //! lets the compiler use vector instructions across them.
 //!
 //! Each model runs the ordinary filter (`filter::run_until`) through its
-//! diffuse phase, then the lock-step loop takes over with the same update
-//! and prediction formulas as the two-state loop of `filter`, with these
-//! differences, all at rounding level: the products of an update are
-//! grouped differently (K v / F as K (v / F)); log F is taken from a running
+//! diffuse phase, then the lock-step loop takes over with the update and
+//! prediction of the general filter (update P - K K'/F, then T P T' + Q),
+//! which differ from the two-state loop of `filter` at rounding level: that
+//! loop folds the update into the prediction and carries the next F on its
+//! own (see its documentation); here the products of an update are
+//! grouped as K (v / F); log F is taken from a running
 //! product whose binary exponent is moved out every 8 steps; and the
 //! steady-state shortcut starts only when every lane of the pass has
 //! converged, so a lane's result can depend in its last bits on the other
