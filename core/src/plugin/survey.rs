@@ -129,14 +129,14 @@ impl Survey {
 /// are skipped). `period_us` is the tag's nominal period.
 pub fn change_times(s: &TagSeries, period_us: i64) -> Vec<i64> {
     let k = SURVEY_K;
-    let (ts, y): (Vec<i64>, Vec<f64>) = s
-        .ts_us
-        .iter()
-        .zip(&s.values)
-        .zip(&s.quality)
-        .filter(|((_, v), q)| v.is_finite() && **q != Quality::Bad)
-        .map(|((t, v), _)| (*t, *v))
-        .unzip();
+    // (Sized for every reading up front: a filtered collect grows by copying.)
+    let (mut ts, mut y) = (Vec::with_capacity(s.values.len()), Vec::with_capacity(s.values.len()));
+    for ((&t, &v), q) in s.ts_us.iter().zip(&s.values).zip(&s.quality) {
+        if v.is_finite() && *q != Quality::Bad {
+            ts.push(t);
+            y.push(v);
+        }
+    }
     let n = y.len();
     if n < 4 * k {
         return Vec::new();
@@ -165,7 +165,8 @@ pub fn change_times(s: &TagSeries, period_us: i64) -> Vec<i64> {
         let step = (pa - pt) / kf - (pt - pb) / kf;
         *dt = if ta - tb <= span { step } else { f64::NAN };
     }
-    let mut abs: Vec<f64> = d.iter().filter(|v| v.is_finite()).map(|v| v.abs()).collect();
+    let mut abs: Vec<f64> = Vec::with_capacity(n);
+    abs.extend(d.iter().filter(|v| v.is_finite()).map(|v| v.abs()));
     if abs.len() < 2 * k {
         return Vec::new();
     }

@@ -423,8 +423,9 @@ fn step_size(y: &[f64], k: usize, w: usize) -> (f64, f64) {
 /// (and at least `stuck_min_us` long) are stuck; the first reading of the
 /// run (the value that froze) is not.
 fn stuck_runs(obs: &TagObs, table: &TagTable, cfg: &Config, f_min: f64) -> Vec<Decision> {
-    let rows: Vec<usize> =
-        obs.rows().zip(&obs.y).filter(|(r, y)| r.is_some() && y.is_finite()).filter_map(|(r, _)| r).collect();
+    // (Sized for every point up front: a filtered collect grows by copying.)
+    let mut rows: Vec<usize> = Vec::with_capacity(obs.len());
+    rows.extend(obs.rows().zip(&obs.y).filter(|(r, y)| r.is_some() && y.is_finite()).filter_map(|(r, _)| r));
     // Quantum: the smallest positive difference between consecutive readings
     // (without branches: a zero difference counts as infinite).
     let positive = |d: f64| if d > 0.0 { d } else { f64::INFINITY };
@@ -489,7 +490,8 @@ fn normal_cdf(x: f64) -> f64 {
 fn noise_windows(e: &[f64], obs: &TagObs, cfg: &Config) -> Vec<(usize, f64, f64)> {
     let n = e.len();
     let mut out = Vec::new();
-    let idx: Vec<usize> = (0..n).filter(|&k| obs.row(k).is_some() && e[k].is_finite()).collect();
+    let mut idx: Vec<usize> = Vec::with_capacity(n);
+    idx.extend((0..n).filter(|&k| obs.row(k).is_some() && e[k].is_finite()));
     let m = idx.len();
     let w = cfg.noise_w;
     if m < w {
