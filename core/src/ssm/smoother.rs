@@ -425,12 +425,21 @@ fn run_two_states<const UNIT_Z: bool>(
 ) -> ([f64; 2], [f64; 3]) {
     let n = filt.n;
     let (z0, z1) = (model.z[(0, 0)], model.z[(0, 1)]);
+    // T (t00, t10, t01, t11: column by column) and its shape.
     let load = |sys: &super::model::StepSystem| {
         let t = sys.t.as_slice();
-        (t[0], t[1], t[2], t[3])
+        ([t[0], t[1], t[2], t[3]], TwoStateShape::of(t[0], t[2], t[1]))
     };
-    let (mut t00, mut t10, mut t01, mut t11) = load(sys);
-    let mut shape = TwoStateShape::of(t00, t01, t10);
+    let mut system = load(sys);
+    // Makes `system` the step system of a step of dt (loaded only when dt
+    // is not the one loaded).
+    let step_system = |dt: f64, sys: &mut super::model::StepSystem, cur_dt: &mut f64, system: &mut ([f64; 4], _)| {
+        if dt != *cur_dt {
+            model.system_for_step(dt, sys);
+            *system = load(sys);
+            *cur_dt = dt;
+        }
+    };
     // r and N after the observation at t + 1 (zero past the last time).
     let (mut r0, mut r1) = (0.0, 0.0);
     let (mut n00, mut n01, mut n11) = (0.0, 0.0, 0.0);
@@ -438,7 +447,9 @@ fn run_two_states<const UNIT_Z: bool>(
     let lean = out.lean;
     let d_sig = model.d[0];
     // r' = T'r and N' = T'NT, the step back through T alone.
-    let step_back = |shape, [t00, t10, t01, t11]: [f64; 4], [r0, r1]: [f64; 2], [n00, n01, n11]: [f64; 3]| match shape {
+    let step_back = |([t00, t10, t01, t11], shape): ([f64; 4], TwoStateShape),
+                     [r0, r1]: [f64; 2],
+                     [n00, n01, n11]: [f64; 3]| match shape {
         TwoStateShape::RandomWalkLevel => ([r0, r1 * t11], [n00, n01 * t11, (t11 * n11) * t11]),
         TwoStateShape::Diagonal => ([t00 * r0, t11 * r1], [(t00 * n00) * t00, (t00 * n01) * t11, (t11 * n11) * t11]),
         TwoStateShape::Full => {
@@ -449,14 +460,9 @@ fn run_two_states<const UNIT_Z: bool>(
         // T_t, the step from t to t + 1 (at the last time r and N are zero
         // and the loaded T stands in).
         if t + 1 < n {
-            let dt = obs.step(t);
-            if dt != *cur_dt {
-                model.system_for_step(dt, sys);
-                (t00, t10, t01, t11) = load(sys);
-                shape = TwoStateShape::of(t00, t01, t10);
-                *cur_dt = dt;
-            }
+            step_system(obs.step(t), sys, cur_dt, &mut system);
         }
+        let ([t00, t10, t01, t11], shape) = system;
         if filt.kind[t] == ElemKind::Regular {
             // With L = I - k z/F and the gain's image g = T k, the step
             // back and the update at t fold into one product with
@@ -495,7 +501,7 @@ fn run_two_states<const UNIT_Z: bool>(
             (n00, n01, n11) =
                 ((m00 * x00 + m10 * x10) + zz00, (m00 * x01 + m10 * x11) + zz01, (m01 * x01 + m11 * x11) + zz11);
         } else if t + 1 < n {
-            ([r0, r1], [n00, n01, n11]) = step_back(shape, [t00, t10, t01, t11], [r0, r1], [n00, n01, n11]);
+            ([r0, r1], [n00, n01, n11]) = step_back(system, [r0, r1], [n00, n01, n11]);
         }
         let pm = &filt.p_pred[4 * t..4 * t + 4];
         let (p00, p10, p01, p11) = (pm[0], pm[1], pm[2], pm[3]);
@@ -536,14 +542,8 @@ fn run_two_states<const UNIT_Z: bool>(
     // The step back through T_{t-1} from the first time handled.
     let first = filt.diffuse_end;
     if first > 0 && first < n {
-        let dt = obs.step(first - 1);
-        if dt != *cur_dt {
-            model.system_for_step(dt, sys);
-            (t00, t10, t01, t11) = load(sys);
-            shape = TwoStateShape::of(t00, t01, t10);
-            *cur_dt = dt;
-        }
-        ([r0, r1], [n00, n01, n11]) = step_back(shape, [t00, t10, t01, t11], [r0, r1], [n00, n01, n11]);
+        step_system(obs.step(first - 1), sys, cur_dt, &mut system);
+        ([r0, r1], [n00, n01, n11]) = step_back(system, [r0, r1], [n00, n01, n11]);
     }
     ([r0, r1], [n00, n01, n11])
 }
