@@ -101,45 +101,110 @@ impl<'a> StrCol<'a> {
 /// told apart by key, so equal neighbours cost one comparison of integers.
 pub(super) enum TextCol<'a> {
     Plain(StrCol<'a>),
-    Dict { keys: Vec<usize>, nulls: Vec<bool>, values: StrCol<'a> },
+    /// `nulls`: the column itself, when it has a null row.
+    Dict {
+        keys: Keys<'a>,
+        nulls: Option<&'a dyn Array>,
+        values: StrCol<'a>,
+    },
+}
+
+/// The keys of a dictionary column, in their own integer type.
+pub(super) enum Keys<'a> {
+    I8(&'a [i8]),
+    I16(&'a [i16]),
+    I32(&'a [i32]),
+    I64(&'a [i64]),
+    U8(&'a [u8]),
+    U16(&'a [u16]),
+    U32(&'a [u32]),
+    U64(&'a [u64]),
+}
+
+macro_rules! on_keys {
+    ($keys:expr, $s:ident => $body:expr) => {
+        match $keys {
+            Keys::I8($s) => $body,
+            Keys::I16($s) => $body,
+            Keys::I32($s) => $body,
+            Keys::I64($s) => $body,
+            Keys::U8($s) => $body,
+            Keys::U16($s) => $body,
+            Keys::U32($s) => $body,
+            Keys::U64($s) => $body,
+        }
+    };
+}
+
+impl<'a> Keys<'a> {
+    fn new(a: &'a dyn Array) -> Option<Self> {
+        Some(match a.data_type() {
+            DataType::Int8 => Keys::I8(a.as_primitive_opt::<Int8Type>()?.values()),
+            DataType::Int16 => Keys::I16(a.as_primitive_opt::<Int16Type>()?.values()),
+            DataType::Int32 => Keys::I32(a.as_primitive_opt::<Int32Type>()?.values()),
+            DataType::Int64 => Keys::I64(a.as_primitive_opt::<Int64Type>()?.values()),
+            DataType::UInt8 => Keys::U8(a.as_primitive_opt::<UInt8Type>()?.values()),
+            DataType::UInt16 => Keys::U16(a.as_primitive_opt::<UInt16Type>()?.values()),
+            DataType::UInt32 => Keys::U32(a.as_primitive_opt::<UInt32Type>()?.values()),
+            DataType::UInt64 => Keys::U64(a.as_primitive_opt::<UInt64Type>()?.values()),
+            _ => return None,
+        })
+    }
+
+    /// The key of row `i` as an index (`None` past the end or when negative).
+    fn get(&self, i: usize) -> Option<usize> {
+        on_keys!(self, s => s.get(i).and_then(|&k| usize::try_from(k).ok()))
+    }
+
+    /// The end of the run of rows from `i` (before `end`) with row `i`'s key.
+    fn run_end(&self, i: usize, end: usize) -> usize {
+        on_keys!(self, s => {
+            let end = end.min(s.len());
+            match s.get(i) {
+                Some(&k) if i < end => s[i + 1..end].iter().position(|&x| x != k).map_or(end, |p| i + 1 + p),
+                _ => i + 1,
+            }
+        })
+    }
 }
 
 impl<'a> TextCol<'a> {
     pub(super) fn new(a: &'a dyn Array) -> Option<Self> {
         if let Some(dict) = a.as_any_dictionary_opt() {
             let values = StrCol::new(dict.values().as_ref())?;
-            let n_values = values.len();
-            let keys = dict.normalized_keys();
-            // A null row, or a key outside the dictionary (a damaged file), reads as null.
-            let nulls = (0..a.len()).map(|i| a.is_null(i) || keys.get(i).is_none_or(|&k| k >= n_values)).collect();
-            return Some(TextCol::Dict { keys, nulls, values });
+            let keys = Keys::new(dict.keys())?;
+            return Some(TextCol::Dict { keys, nulls: (a.null_count() > 0).then_some(a), values });
         }
         StrCol::new(a).map(TextCol::Plain)
     }
 
-    /// The text of row `i`; `None` for null.
+    /// The text of row `i`; `None` for null (and for a key outside the
+    /// dictionary, which only a damaged file holds).
     pub(super) fn get(&self, i: usize) -> Option<&'a str> {
         match self {
             TextCol::Plain(s) => s.get(i),
             TextCol::Dict { keys, nulls, values } => {
-                if nulls.get(i).copied().unwrap_or(true) {
+                if nulls.is_some_and(|n| n.is_null(i)) {
                     return None;
                 }
-                keys.get(i).and_then(|&k| values.get(k))
+                keys.get(i).filter(|&k| k < values.len()).and_then(|k| values.get(k))
             }
         }
     }
 
-    /// True when rows `i` and `j` certainly hold the same text (same
-    /// dictionary key); false means "compare the texts".
-    pub(super) fn same_key(&self, i: usize, j: usize) -> bool {
+    /// The end of the run of rows from `i` (before `end`) that certainly
+    /// hold row `i`'s text (the same dictionary key, none of them null);
+    /// `i + 1` when the texts must be compared.
+    pub(super) fn run_end(&self, i: usize, end: usize) -> usize {
         match self {
             TextCol::Dict { keys, nulls, .. } => {
-                keys.get(i) == keys.get(j)
-                    && !nulls.get(i).copied().unwrap_or(true)
-                    && !nulls.get(j).copied().unwrap_or(true)
+                let r = keys.run_end(i, end);
+                match nulls {
+                    None => r,
+                    Some(n) => (i..r).position(|k| n.is_null(k)).map_or(r, |p| (i + p).max(i + 1)),
+                }
             }
-            TextCol::Plain(_) => false,
+            TextCol::Plain(_) => i + 1,
         }
     }
 }
@@ -332,6 +397,15 @@ impl<'a> QualCol<'a> {
             QualCol::Text(c) => c.get(i).map_or(RawQuality::Null, RawQuality::Text),
         }
     }
+
+    /// The end of the run of rows from `i` (before `end`) that certainly
+    /// hold row `i`'s code (at least `i + 1`).
+    pub(super) fn run_end(&self, i: usize, end: usize) -> usize {
+        match self {
+            QualCol::Int(c) => c.run_end(i, end),
+            QualCol::Text(c) => c.run_end(i, end),
+        }
+    }
 }
 
 /// An integer column read as i64 (u64 beyond i64::MAX saturates; such a
@@ -377,6 +451,33 @@ impl<'a> IntCol<'a> {
             IntCol::U32(a) => prim!(a),
             IntCol::U16(a) => prim!(a),
             IntCol::U8(a) => prim!(a),
+        }
+    }
+
+    /// The end of the run of rows from `i` (before `end`) with row `i`'s
+    /// value, none of them null (`i + 1` when the column has nulls).
+    pub(super) fn run_end(&self, i: usize, end: usize) -> usize {
+        macro_rules! run {
+            ($a:expr) => {{
+                let v = $a.values();
+                let end = end.min(v.len());
+                match v.get(i) {
+                    Some(&x) if i < end && $a.null_count() == 0 => {
+                        v[i + 1..end].iter().position(|&y| y != x).map_or(end, |p| i + 1 + p)
+                    }
+                    _ => i + 1,
+                }
+            }};
+        }
+        match self {
+            IntCol::I64(a) => run!(a),
+            IntCol::I32(a) => run!(a),
+            IntCol::I16(a) => run!(a),
+            IntCol::I8(a) => run!(a),
+            IntCol::U64(a) => run!(a),
+            IntCol::U32(a) => run!(a),
+            IntCol::U16(a) => run!(a),
+            IntCol::U8(a) => run!(a),
         }
     }
 

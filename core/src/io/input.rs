@@ -119,10 +119,10 @@ impl LongIndex {
         self.runs.push(Run { tag: id, start: row, len: 1 });
     }
 
-    /// Adds one more row to the last run (the caller knows the tag is the same).
-    pub(super) fn extend_last(&mut self) {
+    /// Adds `n` more rows to the last run (the caller knows the tag is the same).
+    pub(super) fn extend_last(&mut self, n: usize) {
         if let Some(last) = self.runs.last_mut() {
-            last.len += 1;
+            last.len += n as u64;
         }
     }
 }
@@ -138,7 +138,37 @@ pub(super) struct Chunk {
     pub value: Vec<f64>,
     pub quality: Vec<Quality>,
     /// Row numbers as the errors show them (1-based; CSV header is row 1).
-    pub row: Vec<u64>,
+    pub row: RowNumbers,
+}
+
+/// The file row numbers of a chunk's rows, kept as runs of consecutive
+/// numbers: a tag's rows are mostly one stretch of the file, and only an
+/// error message asks for a row number.
+#[derive(Debug, Clone, Default)]
+pub(super) struct RowNumbers {
+    /// (index of the run's first row in the chunk, its row number), by index.
+    runs: Vec<(usize, u64)>,
+}
+
+impl RowNumbers {
+    /// Numbers rows `at..at + len` of the chunk `first..first + len`.
+    pub(super) fn push_run(&mut self, at: usize, first: u64, len: usize) {
+        if len == 0 {
+            return;
+        }
+        if let Some(&(a, r)) = self.runs.last() {
+            if r + (at - a) as u64 == first {
+                return;
+            }
+        }
+        self.runs.push((at, first));
+    }
+
+    /// The row number of the chunk's row `i`.
+    pub(super) fn get(&self, i: usize) -> u64 {
+        let k = self.runs.partition_point(|&(a, _)| a <= i);
+        self.runs.get(k.wrapping_sub(1)).map_or(0, |&(a, r)| r + (i - a) as u64)
+    }
 }
 
 impl Chunk {
@@ -148,16 +178,16 @@ impl Chunk {
             local: Vec::new(),
             value: Vec::with_capacity(n),
             quality: Vec::with_capacity(n),
-            row: Vec::with_capacity(n),
+            row: RowNumbers::default(),
         }
     }
 
     pub(super) fn push(&mut self, ts: i64, local: bool, value: f64, quality: Quality, row: u64) {
         self.note_local(local, 1);
+        self.row.push_run(self.ts.len(), row, 1);
         self.ts.push(ts);
         self.value.push(value);
         self.quality.push(quality);
-        self.row.push(row);
     }
 
     pub(super) fn len(&self) -> usize {
@@ -184,13 +214,39 @@ impl Chunk {
         let mut out = Chunk::with_capacity(self.len());
         for i in 0..self.len() {
             if keep(self.ts[i]) {
+                out.row.push_run(out.ts.len(), self.row.get(i), 1);
                 out.ts.push(self.ts[i]);
                 out.value.push(self.value[i]);
                 out.quality.push(self.quality[i]);
-                out.row.push(self.row[i]);
             }
         }
         out
+    }
+}
+
+/// How a run of times is ordered: steps back, and times equal to the one
+/// before.
+struct Order {
+    back: usize,
+    repeats: usize,
+}
+
+impl Order {
+    fn of(ts: &[i64]) -> Order {
+        let (mut back, mut repeats) = (0usize, 0usize);
+        for (a, b) in ts.iter().zip(ts.iter().skip(1)) {
+            back += usize::from(b < a);
+            repeats += usize::from(b == a);
+        }
+        Order { back, repeats }
+    }
+
+    /// The earliest and latest of `ts` (the ends, when nothing steps back).
+    fn range(&self, ts: &[i64]) -> (i64, i64) {
+        match (ts.first(), ts.last()) {
+            (Some(&a), Some(&b)) if self.back == 0 => (a, b),
+            _ => ts.iter().fold((i64::MAX, i64::MIN), |(lo, hi), &t| (lo.min(t), hi.max(t))),
+        }
     }
 }
 
@@ -479,6 +535,7 @@ impl InputSet {
         let mut counts = ReadCounts::default();
         let mut resolver = LocalResolver::new(self.tz);
         let mut fold = FoldState::default();
+        let (mut sorted, mut repeats) = (true, false);
         for (f, mut c) in chunks {
             // Local times to UTC, in file order (the daylight-saving rule follows the rows).
             if !c.local.is_empty() {
@@ -487,7 +544,7 @@ impl InputSet {
                         c.ts[i] =
                             local_to_utc(&mut resolver, &mut fold, c.ts[i]).map_err(|reason| IoError::BadTime {
                                 path: self.files[f].path.clone(),
-                                row: c.row[i],
+                                row: c.row.get(i),
                                 column: self.spec.columns.time.clone(),
                                 text: format_local(c.ts[i]),
                                 reason,
@@ -495,23 +552,38 @@ impl InputSet {
                     }
                 }
             }
+            // One pass over the times finds the steps back and the repeats.
+            let mut order = Order::of(&c.ts);
             if let Some((from, to)) = self.window {
-                if c.ts.iter().any(|&t| t < from || t >= to) {
+                let (lo, hi) = order.range(&c.ts);
+                if lo < from || hi >= to {
                     c = c.filter(|t| t >= from && t < to);
+                    order = Order::of(&c.ts);
                 }
             }
             counts.rows += c.len();
-            counts.out_of_order += c.ts.windows(2).filter(|w| w[1] < w[0]).count();
-            for (v, q) in c.value.iter_mut().zip(c.quality.iter_mut()) {
-                if !v.is_finite() {
-                    counts.non_finite += 1;
-                    *v = f64::NAN;
-                    *q = Quality::Bad;
+            counts.out_of_order += order.back;
+            // (Counted first, without writing: most chunks hold none.)
+            if c.value.iter().any(|v| !v.is_finite()) {
+                for (v, q) in c.value.iter_mut().zip(c.quality.iter_mut()) {
+                    if !v.is_finite() {
+                        counts.non_finite += 1;
+                        *v = f64::NAN;
+                        *q = Quality::Bad;
+                    }
                 }
             }
             if want_origin {
-                origin.extend(c.row.iter().map(|&r| (f as u32, r)));
+                origin.extend((0..c.len()).map(|i| (f as u32, c.row.get(i))));
             }
+            // The whole series so far is in order (and has a repeat) when
+            // each chunk is and the seam between them is.
+            if let (Some(&prev), Some(&first)) = (ts.last(), c.ts.first()) {
+                sorted &= first >= prev;
+                repeats |= first == prev;
+            }
+            sorted &= order.back == 0;
+            repeats |= order.repeats > 0;
             if ts.is_empty() {
                 (ts, values, quality) = (c.ts, c.value, c.quality);
             } else {
@@ -520,7 +592,7 @@ impl InputSet {
                 quality.extend_from_slice(&c.quality);
             }
         }
-        if ts.windows(2).any(|w| w[1] < w[0]) {
+        if !sorted {
             let mut order: Vec<usize> = (0..ts.len()).collect();
             // Stable: equal times keep input order (files as given, rows in file order).
             order.sort_by_key(|&i| ts[i]);
@@ -531,7 +603,10 @@ impl InputSet {
                 origin = order.iter().map(|&i| origin[i]).collect();
             }
         }
-        if ts.windows(2).any(|w| w[1] == w[0]) {
+        if !sorted {
+            repeats = ts.windows(2).any(|w| w[1] == w[0]);
+        }
+        if repeats {
             self.drop_duplicates(&tag, &mut ts, &mut values, &mut quality, &origin, &mut counts)?;
         }
         Ok(TagSeries { tag, ts_us: ts, values, quality, counts })

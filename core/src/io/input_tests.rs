@@ -644,3 +644,60 @@ proptest! {
         }
     }
 }
+
+/// Row numbers are kept as runs; a chunk asks for them only in errors.
+#[test]
+fn row_numbers_are_runs_of_consecutive_rows() {
+    let mut r = RowNumbers::default();
+    r.push_run(0, 5, 3); // rows 5, 6, 7
+    r.push_run(3, 8, 2); // 8, 9: the same run goes on
+    r.push_run(5, 20, 1); // a jump
+    r.push_run(6, 30, 0); // nothing
+    assert_eq!((0..6).map(|i| r.get(i)).collect::<Vec<_>>(), [5, 6, 7, 8, 9, 20]);
+    assert_eq!(r.runs.len(), 2);
+}
+
+/// Runs of equal dictionary keys and quality codes are read a run at a
+/// time; a null inside a run still stops it, at the right row.
+#[test]
+fn runs_of_equal_cells_stop_at_a_null() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let n = 6;
+    let ts = || Arc::new(TimestampMicrosecondArray::from_iter_values((0..n as i64).map(|i| T0 + i * S))) as ArrayRef;
+    let mut tags = StringDictionaryBuilder::<Int32Type>::new();
+    for t in [Some("A"), Some("A"), Some("A"), None, Some("A"), Some("A")] {
+        match t {
+            Some(t) => tags.append_value(t),
+            None => tags.append_null(),
+        }
+    }
+    let p = d.join("nulltag_dict.parquet");
+    write_parquet(
+        &p,
+        vec![
+            ("tag", Arc::new(tags.finish()) as ArrayRef),
+            ("ts", ts()),
+            ("value", Arc::new(Float64Array::from(vec![1.0; n]))),
+        ],
+        10,
+    );
+    let e = err(open(&[p], &spec()));
+    assert!(e.contains("nulltag_dict.parquet: row 4, column `tag`: the tag is null"), "{e}");
+
+    use Quality::*;
+    let p = d.join("nullq.parquet");
+    let q = Int32Array::from(vec![Some(192), Some(192), None, Some(192), Some(64), Some(64)]);
+    write_parquet(
+        &p,
+        vec![
+            ("tag", Arc::new(StringArray::from(vec!["A"; n])) as ArrayRef),
+            ("ts", ts()),
+            ("value", Arc::new(Float64Array::from(vec![1.0; n]))),
+            ("quality", Arc::new(q)),
+        ],
+        10,
+    );
+    let sp = InputSpec { quality: QualityCoding::OpcByte, ..with_quality(spec()) };
+    assert_eq!(one(&open(&[p], &sp).unwrap(), "A").quality, [Good, Good, Bad, Good, Uncertain, Uncertain]);
+}

@@ -186,17 +186,19 @@ fn open_unguarded(path: &Path, spec: &InputSpec) -> Result<(ParquetLong, LongInd
         let col = batch.column(tag_pos);
         let tags =
             TextCol::new(col.as_ref()).ok_or_else(|| type_error(path, "tag", &c.tag, col.data_type(), TAG_TYPES))?;
-        for i in 0..batch.num_rows() {
+        let n = batch.num_rows();
+        let mut i = 0;
+        while i < n {
             let row = base + i as u64;
-            if i > 0 && tags.same_key(i, i - 1) {
-                index.extend_last();
-                continue;
-            }
             match tags.get(i) {
                 Some(t) if !t.is_empty() => index.push(t, row),
                 Some(_) => return Err(bad_row(path, row + 1, &c.tag, "the tag is empty".into())),
                 None => return Err(bad_row(path, row + 1, &c.tag, "the tag is null".into())),
             }
+            // The rows after it with the same dictionary key hold the same tag.
+            let end = tags.run_end(i, n);
+            index.extend_last(end - i - 1);
+            i = end;
         }
         if let (Some(p), Some(name)) = (q_pos, &c.quality) {
             let qc = batch.column(p);
@@ -371,6 +373,7 @@ impl ParquetLong {
             let take = ((run.len - cursor.1) as usize).min(n - i);
             let Some(chunk) = out.get_mut(&run.tag) else { break };
             let first_row = run.start + cursor.1 + 1;
+            chunk.row.push_run(chunk.ts.len(), first_row, take);
             chunk.note_local(times.local, take);
             if let Err(k) = times.extend_into(&mut chunk.ts, i, take) {
                 let row = first_row + (k - i) as u64;
@@ -383,9 +386,11 @@ impl ParquetLong {
             match &quality {
                 None => chunk.quality.extend(std::iter::repeat_n(Quality::Good, take)),
                 Some((col, map)) => {
-                    // Codes repeat: map each distinct run of equal cells once.
+                    // Codes repeat: map each run of equal cells once (and a
+                    // code equal to the last run's without mapping it again).
                     let mut last: Option<(RawQuality, Quality)> = None;
-                    for k in i..i + take {
+                    let mut k = i;
+                    while k < i + take {
                         let raw = col.get(k);
                         let q = match last {
                             Some((r, q)) if r == raw => q,
@@ -402,11 +407,12 @@ impl ParquetLong {
                                 q
                             }
                         };
-                        chunk.quality.push(q);
+                        let end = col.run_end(k, i + take);
+                        chunk.quality.extend(std::iter::repeat_n(q, end - k));
+                        k = end;
                     }
                 }
             }
-            chunk.row.extend(first_row..first_row + take as u64);
             cursor.1 += take as u64;
             i += take;
             if cursor.1 == run.len {

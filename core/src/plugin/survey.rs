@@ -129,21 +129,31 @@ impl Survey {
 /// are skipped). `period_us` is the tag's nominal period.
 pub fn change_times(s: &TagSeries, period_us: i64) -> Vec<i64> {
     let k = SURVEY_K;
-    // (Sized for every reading up front: a filtered collect grows by copying.)
-    let (mut ts, mut y) = (Vec::with_capacity(s.values.len()), Vec::with_capacity(s.values.len()));
-    for ((&t, &v), q) in s.ts_us.iter().zip(&s.values).zip(&s.quality) {
-        if v.is_finite() && *q != Quality::Bad {
-            ts.push(t);
-            y.push(v);
+    let usable = |v: f64, q: Quality| v.is_finite() && q != Quality::Bad;
+    // The readings themselves when every one is usable (most tags), else a
+    // copy of the usable ones (sized for all of them up front: a filtered
+    // collect grows by copying).
+    let kept: (Vec<i64>, Vec<f64>);
+    let (ts, y): (&[i64], &[f64]) = if s.values.iter().zip(&s.quality).all(|(&v, &q)| usable(v, q)) {
+        (&s.ts_us, &s.values)
+    } else {
+        let (mut ts, mut y) = (Vec::with_capacity(s.values.len()), Vec::with_capacity(s.values.len()));
+        for ((&t, &v), &q) in s.ts_us.iter().zip(&s.values).zip(&s.quality) {
+            if usable(v, q) {
+                ts.push(t);
+                y.push(v);
+            }
         }
-    }
+        kept = (ts, y);
+        (&kept.0, &kept.1)
+    };
     let n = y.len();
     if n < 4 * k {
         return Vec::new();
     }
     let mut prefix = Vec::with_capacity(n + 1);
     prefix.push(0.0);
-    for v in &y {
+    for v in y {
         prefix.push(prefix.last().copied().unwrap_or(0.0) + v);
     }
     let span = 2 * k as i64 * period_us.max(1);
