@@ -126,9 +126,13 @@ pub fn run(
 ) -> Result<RunOutcome, EngineError> {
     let started = Instant::now();
     let started_at = chrono::Utc::now();
-    let input =
-        InputSet::open(&opts.inputs, InputOptions { spec: &spec.input, tz: spec.site.timezone, window: opts.window })
-            .map_err(EngineError::Input)?;
+    // The inputs' SHA-256 (for the run id and provenance) is computed aside
+    // while the run reads them, and awaited at the end.
+    let mut input = InputSet::open_hashing_aside(
+        &opts.inputs,
+        InputOptions { spec: &spec.input, tz: spec.site.timezone, window: opts.window },
+    )
+    .map_err(EngineError::Input)?;
 
     // Selection and work units, in sorted tag order.
     let mut outcome = RunOutcome { streaming: input.is_streaming(), ..Default::default() };
@@ -176,16 +180,15 @@ pub fn run(
         None
     };
 
-    let run_id = run_id(spec, &input, opts);
-    outcome.run_id = run_id.clone();
     let mut state_in = state::load(opts.state_dir.as_deref()).map_err(EngineError::State)?;
     let mut state_out: BTreeMap<String, BTreeMap<String, serde_json::Value>> = BTreeMap::new();
 
     let out = OutputDir::create(&opts.out_dir).map_err(EngineError::Output)?;
     // The writer encodes on a background thread unless the run is held to one.
+    // (The run id goes into the file's footer when it is closed.)
     let mut writer = CleanedWriter::create_with_threads(
         &out.path("cleaned.parquet"),
-        &run_id,
+        "",
         spec.output.compression,
         if pool.current_num_threads() == 1 { 1 } else { 2 },
     )
@@ -276,6 +279,10 @@ pub fn run(
         }
         next += 1;
     }
+    input.finish_hashing().map_err(EngineError::Input)?;
+    let run_id = run_id(spec, &input, opts);
+    outcome.run_id = run_id.clone();
+    writer.set_run_id(&run_id);
     writer.close().map_err(EngineError::Output)?;
 
     let finished_at = chrono::Utc::now();

@@ -20,6 +20,7 @@
 
 use std::collections::{BTreeSet, HashMap};
 use std::path::{Path, PathBuf};
+use std::sync::atomic::AtomicBool;
 use std::sync::{Arc, Mutex};
 
 use chrono_tz::Tz;
@@ -67,6 +68,54 @@ pub struct InputSet {
     streaming: bool,
     /// Rows of the files read whole, per file.
     cache: Mutex<Vec<Option<Arc<FileRows>>>>,
+    hashing: Hashing,
+}
+
+/// The SHA-256 of the input files, computed one file after the other on a
+/// thread of its own (a file's hash is one sequential pass over its bytes,
+/// which need not hold up the reading).
+#[derive(Debug)]
+struct Hashing {
+    job: Option<std::thread::JoinHandle<Vec<Result<String>>>>,
+    /// The results, when they were computed on the caller's thread.
+    ready: Option<Vec<Result<String>>>,
+    /// Set when the input set is dropped first: the thread stops early.
+    stop: Arc<AtomicBool>,
+}
+
+impl Hashing {
+    fn start(paths: &[PathBuf]) -> Hashing {
+        let stop = Arc::new(AtomicBool::new(false));
+        let (owned, flag) = (paths.to_vec(), stop.clone());
+        let hash_all = move || owned.iter().map(|p| sha256_file(p, &flag)).collect::<Vec<_>>();
+        match std::thread::Builder::new().name("tagwright-hash".into()).spawn(hash_all) {
+            Ok(job) => Hashing { job: Some(job), ready: None, stop },
+            // No thread to be had: hash here and now.
+            Err(_) => {
+                let ready = paths.iter().map(|p| sha256_file(p, &stop)).collect();
+                Hashing { job: None, ready: Some(ready), stop }
+            }
+        }
+    }
+
+    /// The hashes, in file order; `None` after the first call.
+    fn finish(&mut self) -> Option<Vec<Result<String>>> {
+        if let Some(job) = self.job.take() {
+            return Some(job.join().unwrap_or_else(|_| {
+                vec![Err(IoError::Unreadable {
+                    path: PathBuf::from("input"),
+                    source: std::io::Error::other("hashing the input files failed"),
+                })]
+            }));
+        }
+        self.ready.take()
+    }
+}
+
+impl Drop for Hashing {
+    fn drop(&mut self) {
+        self.stop.store(true, std::sync::atomic::Ordering::Relaxed);
+    }
 }
 
 /// The rows of a file read whole: tag id to its rows.
@@ -319,6 +368,15 @@ impl InputSet {
     /// values and quality of long files are read by [`InputSet::read_tags`];
     /// a wide file's time column is read here.
     pub fn open(paths: &[PathBuf], opts: InputOptions) -> Result<InputSet> {
+        let mut set = Self::open_hashing_aside(paths, opts)?;
+        set.finish_hashing()?;
+        Ok(set)
+    }
+
+    /// As [`InputSet::open`], with the files' SHA-256 computed on a thread
+    /// of their own while the caller goes on reading: their `sha256` in
+    /// [`InputSet::files`] is empty until [`InputSet::finish_hashing`].
+    pub fn open_hashing_aside(paths: &[PathBuf], opts: InputOptions) -> Result<InputSet> {
         if paths.is_empty() {
             return Err(IoError::BadInputList { path: PathBuf::from("input"), reason: "no input file given".into() });
         }
@@ -340,10 +398,13 @@ impl InputSet {
         let mut files = Vec::with_capacity(paths.len());
         let mut opened: Vec<Opened> = Vec::with_capacity(paths.len());
         for path in paths {
+            Format::from_path(path)?;
+        }
+        let hashing = Hashing::start(paths);
+        for path in paths {
             let format = Format::from_path(path)?;
-            let (index, hash) = std::thread::scope(|s| {
-                let hasher = s.spawn(|| sha256_file(path));
-                let index = match (spec.format, format) {
+            let index = {
+                match (spec.format, format) {
                     (InputFormat::Long, Format::Parquet) => {
                         long_pq::open(path, spec).map(|(r, ix, rows)| (Opened::Long(LongReader::Parquet(r), ix), rows))
                     }
@@ -356,14 +417,10 @@ impl InputSet {
                     }
                     (InputFormat::Wide, Format::Csv) => wide::read_csv(path, spec, &mut resolver, &mut wide_fold)
                         .map(|(names, chunks, rows)| (Opened::WideCsv(names, chunks), rows)),
-                };
-                let hash = hasher.join().unwrap_or_else(|_| {
-                    Err(IoError::Unreadable { path: path.clone(), source: std::io::Error::other("hashing failed") })
-                });
-                (index, hash)
-            });
+                }
+            };
             let (o, rows) = index?;
-            files.push(InputFileInfo { path: path.clone(), sha256: hash?, rows });
+            files.push(InputFileInfo { path: path.clone(), sha256: String::new(), rows });
             opened.push(o);
         }
 
@@ -417,7 +474,18 @@ impl InputSet {
             tags,
             streaming,
             cache: Mutex::new(cache),
+            hashing,
         })
+    }
+
+    /// Waits for the files' SHA-256 (see [`InputSet::open_hashing_aside`])
+    /// and records them in [`InputSet::files`]; does nothing the second time.
+    pub fn finish_hashing(&mut self) -> Result<()> {
+        let Some(hashes) = self.hashing.finish() else { return Ok(()) };
+        for (f, h) in self.files.iter_mut().zip(hashes) {
+            f.sha256 = h?;
+        }
+        Ok(())
     }
 
     /// Every tag in the input, sorted (byte order), each once. A tag with no
@@ -691,12 +759,17 @@ impl Opened {
 }
 
 /// SHA-256 of a file's bytes, lower-case hex.
-fn sha256_file(path: &Path) -> Result<String> {
+/// The SHA-256 of a file, lower-case hex (an error once `stop` is set).
+fn sha256_file(path: &Path, stop: &AtomicBool) -> Result<String> {
     use std::io::Read;
     let mut f = open_file(path)?;
     let mut h = Sha256::new();
     let mut buf = vec![0u8; 1 << 20];
     loop {
+        if stop.load(std::sync::atomic::Ordering::Relaxed) {
+            let source = std::io::Error::other("hashing stopped");
+            return Err(IoError::Unreadable { path: path.to_path_buf(), source });
+        }
         match f.read(&mut buf) {
             Ok(0) => break,
             Ok(k) => h.update(&buf[..k]),

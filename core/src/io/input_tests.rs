@@ -103,6 +103,13 @@ fn long_csv_rules_sort_count_and_quality_words() {
     assert!(set.is_streaming());
     assert_eq!(set.files()[0].rows, 6);
     assert_eq!(set.files()[0].sha256.len(), 64);
+    // Hashed aside: read first, the same hash when awaited.
+    let opts = InputOptions { spec: &with_quality(spec()), tz: chrono_tz::Europe::Berlin, window: None };
+    let mut aside = InputSet::open_hashing_aside(std::slice::from_ref(&p), opts).unwrap();
+    assert_eq!(one(&aside, "TT-204.PV").values, [81.0]);
+    aside.finish_hashing().unwrap();
+    aside.finish_hashing().unwrap();
+    assert_eq!(aside.files(), set.files());
     let s = one(&set, "FT-101.PV");
     assert_eq!(s.ts_us, [0, 5, 10, 15, 20].map(|k| T0 + k * S));
     assert_eq!(s.values[0], 1.0);

@@ -34,7 +34,7 @@ use std::fs::File;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::mpsc::SyncSender;
-use std::sync::Arc;
+use std::sync::{Arc, Mutex};
 
 use arrow_schema::{DataType, Field, Schema, SchemaRef, TimeUnit};
 use parquet::arrow::ArrowWriter;
@@ -122,6 +122,8 @@ pub struct CleanedWriter {
     inline: Option<Encoder>,
     /// Set when the writer is dropped without `close`: the worker stops.
     abort: Arc<AtomicBool>,
+    /// The footer's key-value metadata, shared with the encoder.
+    meta: Arc<Mutex<Vec<KeyValue>>>,
 }
 
 impl std::fmt::Debug for CleanedWriter {
@@ -151,19 +153,20 @@ impl CleanedWriter {
         // of its own too (output_sink.rs).
         let file =
             if threads > 1 { Sink::threaded(file).map_err(|e| write_error(&partial, e))? } else { Sink::Direct(file) };
-        let metadata = vec![
+        // The run id and version go into the footer (see `set_run_id`).
+        let meta = Arc::new(Mutex::new(vec![
             KeyValue::new(META_RUN_ID.to_string(), run_id.to_string()),
             KeyValue::new(META_VERSION.to_string(), env!("CARGO_PKG_VERSION").to_string()),
-        ];
+        ]));
         let schema = cleaned_schema();
         // The ArrowWriter sets up the Parquet schema and the embedded Arrow
         // schema; the row groups are then written column chunk by column
         // chunk (output_encode.rs).
-        let writer = ArrowWriter::try_new(file, schema, Some(writer_properties(compression, metadata)))
+        let writer = ArrowWriter::try_new(file, schema, Some(writer_properties(compression, Vec::new())))
             .map_err(|e| write_error(&partial, e))?;
         let (file, _) = writer.into_serialized_writer().map_err(|e| write_error(&partial, e))?;
         let abort = Arc::new(AtomicBool::new(false));
-        let encoder = Encoder::new(partial.clone(), file, threads > 1)?;
+        let encoder = Encoder::new(partial.clone(), file, threads > 1, meta.clone())?;
         let (tx, worker, inline) = if threads > 1 {
             let (tx, worker) = spawn(encoder, abort.clone())?;
             (Some(tx), Some(worker), None)
@@ -180,7 +183,17 @@ impl CleanedWriter {
             worker,
             inline,
             abort,
+            meta,
         })
+    }
+
+    /// Sets the run id written into the file's metadata at
+    /// [`CleanedWriter::close`] (for a run whose id is known only at its end).
+    pub fn set_run_id(&mut self, run_id: &str) {
+        let mut meta = self.meta.lock().unwrap_or_else(|p| p.into_inner());
+        for kv in meta.iter_mut().filter(|kv| kv.key == META_RUN_ID) {
+            kv.value = Some(run_id.to_string());
+        }
     }
 
     /// Appends one tag's rows. Tags must come in sorted order, each once;

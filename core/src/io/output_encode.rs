@@ -14,9 +14,10 @@ use std::fs::File;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::mpsc::{Receiver, SyncSender};
-use std::sync::Arc;
+use std::sync::{Arc, Mutex};
 
 use parquet::errors::ParquetError;
+use parquet::file::metadata::KeyValue;
 use parquet::file::writer::SerializedFileWriter;
 
 use super::output::ROW_GROUP_ROWS;
@@ -117,6 +118,9 @@ pub(super) struct Encoder {
     /// worker encodes `ts`, `value`, `std`; `None` when encoding runs on one
     /// thread. (`raw` and `value` are the costly columns.)
     helper: Option<rayon::ThreadPool>,
+    /// The file's key-value metadata, written with the footer (the writer
+    /// may learn the run id only when the run ends).
+    meta: Arc<Mutex<Vec<KeyValue>>>,
 }
 
 fn write_error(path: &Path, e: impl Into<super::BoxError>) -> IoError {
@@ -135,7 +139,12 @@ struct Group {
 }
 
 impl Encoder {
-    pub(super) fn new(partial: PathBuf, file: SerializedFileWriter<Sink>, parallel: bool) -> Result<Self> {
+    pub(super) fn new(
+        partial: PathBuf,
+        file: SerializedFileWriter<Sink>,
+        parallel: bool,
+        meta: Arc<Mutex<Vec<KeyValue>>>,
+    ) -> Result<Self> {
         let helper = if parallel {
             let pool = rayon::ThreadPoolBuilder::new()
                 .num_threads(1)
@@ -146,7 +155,7 @@ impl Encoder {
         } else {
             None
         };
-        Ok(Encoder { partial, file, group: None, group_rows: 0, buffers: Default::default(), helper })
+        Ok(Encoder { partial, file, group: None, group_rows: 0, buffers: Default::default(), helper, meta })
     }
 
     /// Encodes one buffer of rows, closing row groups as they fill.
@@ -167,6 +176,10 @@ impl Encoder {
     /// Closes the last row group, writes the footer and syncs the file.
     pub(super) fn finish(mut self) -> Result<File> {
         self.close_group()?;
+        let meta = self.meta.lock().map(|m| m.clone()).unwrap_or_else(|p| p.into_inner().clone());
+        for kv in meta {
+            self.file.append_key_value_metadata(kv);
+        }
         let partial = self.partial.clone();
         let sink = self.file.into_inner().map_err(|e| write_error(&partial, e))?;
         let file = sink.finish().map_err(|e| write_error(&partial, e))?;

@@ -113,11 +113,13 @@ fn round_trip_schema_metadata_and_encodings() {
     a.raw[6] = f64::NAN;
     let b = table("TT-204.PV", 3);
     let empty = table("XX-0", 0);
-    let mut w = CleanedWriter::create(&path, "run-7", Compression::Zstd).unwrap();
+    let mut w = CleanedWriter::create(&path, "run-0", Compression::Zstd).unwrap();
     assert!(!path.exists(), "written under a partial name until closed");
     for t in [&a, &b, &empty] {
         w.write_tag(t).unwrap();
     }
+    // A run learns its id at the end: the footer has the last one set.
+    w.set_run_id("run-7");
     assert_eq!(w.close().unwrap(), 10);
 
     let (schema, rows, kv) = read_back(&path);
