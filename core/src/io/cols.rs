@@ -152,6 +152,8 @@ impl<'a> Keys<'a> {
     }
 
     /// The key of row `i` as an index (`None` past the end or when negative).
+    // (One conversion for every key type: from the unsigned ones it cannot fail.)
+    #[allow(clippy::unnecessary_fallible_conversions)]
     fn get(&self, i: usize) -> Option<usize> {
         on_keys!(self, s => s.get(i).and_then(|&k| usize::try_from(k).ok()))
     }
