@@ -137,13 +137,18 @@ pub fn change_times(s: &TagSeries, period_us: i64) -> Vec<i64> {
     let (ts, y): (&[i64], &[f64]) = if s.values.iter().zip(&s.quality).all(|(&v, &q)| usable(v, q)) {
         (&s.ts_us, &s.values)
     } else {
-        let (mut ts, mut y) = (Vec::with_capacity(s.values.len()), Vec::with_capacity(s.values.len()));
-        for ((&t, &v), &q) in s.ts_us.iter().zip(&s.values).zip(&s.quality) {
-            if usable(v, q) {
-                ts.push(t);
-                y.push(v);
-            }
+        // Each reading is written at the next free place, which moves on
+        // only past a usable one (no branch per reading, no growing).
+        let m = s.values.len().min(s.ts_us.len()).min(s.quality.len());
+        let (mut ts, mut y) = (vec![0; m], vec![0.0; m]);
+        let mut j = 0;
+        for i in 0..m {
+            ts[j] = s.ts_us[i];
+            y[j] = s.values[i];
+            j += usize::from(usable(s.values[i], s.quality[i]));
         }
+        ts.truncate(j);
+        y.truncate(j);
         kept = (ts, y);
         (&kept.0, &kept.1)
     };
@@ -151,11 +156,14 @@ pub fn change_times(s: &TagSeries, period_us: i64) -> Vec<i64> {
     if n < 4 * k {
         return Vec::new();
     }
+    // (The running sum is carried in a register: pushing `last + v` reloaded it.)
     let mut prefix = Vec::with_capacity(n + 1);
     prefix.push(0.0);
-    for v in y {
-        prefix.push(prefix.last().copied().unwrap_or(0.0) + v);
-    }
+    let mut sum = 0.0;
+    prefix.extend(y.iter().map(|&v| {
+        sum += v;
+        sum
+    }));
     let span = 2 * k as i64 * period_us.max(1);
     // d_t = mean of the k readings from t on - mean of the k before t, where
     // those 2k readings span at most 2k periods (NaN elsewhere). Written
@@ -175,8 +183,14 @@ pub fn change_times(s: &TagSeries, period_us: i64) -> Vec<i64> {
         let step = (pa - pt) / kf - (pt - pb) / kf;
         *dt = if ta - tb <= span { step } else { f64::NAN };
     }
-    let mut abs: Vec<f64> = Vec::with_capacity(n);
-    abs.extend(d.iter().filter(|v| v.is_finite()).map(|v| v.abs()));
+    // |d| where d is defined, compacted as the readings were above.
+    let mut abs = vec![0.0; n];
+    let mut j = 0;
+    for &v in &d {
+        abs[j] = v.abs();
+        j += usize::from(v.is_finite());
+    }
+    abs.truncate(j);
     if abs.len() < 2 * k {
         return Vec::new();
     }
