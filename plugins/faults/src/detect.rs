@@ -428,8 +428,15 @@ fn stuck_runs(obs: &TagObs, table: &TagTable, cfg: &Config, f_min: f64) -> Vec<D
     rows.extend(obs.rows().zip(&obs.y).filter(|(r, y)| r.is_some() && y.is_finite()).filter_map(|(r, _)| r));
     // Quantum: the smallest positive difference between consecutive readings
     // (without branches: a zero difference counts as infinite).
+    // (Four running minima, not one chain of them: the minimum of finite
+    // numbers does not depend on the order they are taken in.)
     let positive = |d: f64| if d > 0.0 { d } else { f64::INFINITY };
-    let q = rows.windows(2).map(|w| positive((table.raw[w[1]] - table.raw[w[0]]).abs())).fold(f64::INFINITY, f64::min);
+    let mut lanes = [f64::INFINITY; 4];
+    for (i, w) in rows.windows(2).enumerate() {
+        let l = &mut lanes[i % 4];
+        *l = l.min(positive((table.raw[w[1]] - table.raw[w[0]]).abs()));
+    }
+    let q = lanes.into_iter().fold(f64::INFINITY, f64::min);
     if !q.is_finite() || f_min.is_nan() || f_min <= 0.0 {
         return Vec::new();
     }
@@ -500,9 +507,12 @@ fn noise_windows(e: &[f64], obs: &TagObs, cfg: &Config) -> Vec<(usize, f64, f64)
     let cap = cfg.spike * cfg.spike;
     let mut sum = vec![0.0; m + 1];
     let mut pos = vec![0usize; m + 1];
-    for (j, &k) in idx.iter().enumerate() {
-        sum[j + 1] = sum[j] + (e[k] * e[k]).min(cap);
-        pos[j + 1] = pos[j] + usize::from(e[k] > 0.0);
+    // (The running sums are carried in registers, not reloaded from the arrays.)
+    let (mut s, mut p) = (0.0, 0usize);
+    for ((&k, sum), pos) in idx.iter().zip(&mut sum[1..]).zip(&mut pos[1..]) {
+        s += (e[k] * e[k]).min(cap);
+        p += usize::from(e[k] > 0.0);
+        (*sum, *pos) = (s, p);
     }
     let bound = chi2_upper_quantile(cfg.noise_alpha, w as f64);
     let half = w / 2;
