@@ -403,21 +403,17 @@ impl InputSet {
         let hashing = Hashing::start(paths);
         for path in paths {
             let format = Format::from_path(path)?;
-            let index = {
-                match (spec.format, format) {
-                    (InputFormat::Long, Format::Parquet) => {
-                        long_pq::open(path, spec).map(|(r, ix, rows)| (Opened::Long(LongReader::Parquet(r), ix), rows))
-                    }
-                    (InputFormat::Long, Format::Csv) => {
-                        long_csv::open(path, spec).map(|(r, ix, rows)| (Opened::Long(LongReader::Csv(r), ix), rows))
-                    }
-                    (InputFormat::Wide, Format::Parquet) => {
-                        wide::open_parquet(path, spec, &mut resolver, &mut wide_fold)
-                            .map(|(r, rows)| (Opened::WideParquet(r), rows))
-                    }
-                    (InputFormat::Wide, Format::Csv) => wide::read_csv(path, spec, &mut resolver, &mut wide_fold)
-                        .map(|(names, chunks, rows)| (Opened::WideCsv(names, chunks), rows)),
+            let index = match (spec.format, format) {
+                (InputFormat::Long, Format::Parquet) => {
+                    long_pq::open(path, spec).map(|(r, ix, rows)| (Opened::Long(LongReader::Parquet(r), ix), rows))
                 }
+                (InputFormat::Long, Format::Csv) => {
+                    long_csv::open(path, spec).map(|(r, ix, rows)| (Opened::Long(LongReader::Csv(r), ix), rows))
+                }
+                (InputFormat::Wide, Format::Parquet) => wide::open_parquet(path, spec, &mut resolver, &mut wide_fold)
+                    .map(|(r, rows)| (Opened::WideParquet(r), rows)),
+                (InputFormat::Wide, Format::Csv) => wide::read_csv(path, spec, &mut resolver, &mut wide_fold)
+                    .map(|(names, chunks, rows)| (Opened::WideCsv(names, chunks), rows)),
             };
             let (o, rows) = index?;
             files.push(InputFileInfo { path: path.clone(), sha256: String::new(), rows });
