@@ -627,14 +627,16 @@ impl InputSet {
             }
             counts.rows += c.len();
             counts.out_of_order += order.back;
-            // (Counted first, without writing: most chunks hold none.)
-            if c.value.iter().any(|v| !v.is_finite()) {
+            // (Counted first, without writing: most chunks hold none; where
+            // some are, every reading is written through a select, with no
+            // branch per reading.)
+            let non_finite = c.value.iter().filter(|v| !v.is_finite()).count();
+            if non_finite > 0 {
+                counts.non_finite += non_finite;
                 for (v, q) in c.value.iter_mut().zip(c.quality.iter_mut()) {
-                    if !v.is_finite() {
-                        counts.non_finite += 1;
-                        *v = f64::NAN;
-                        *q = Quality::Bad;
-                    }
+                    let bad = !v.is_finite();
+                    *q = if bad { Quality::Bad } else { *q };
+                    *v = if bad { f64::NAN } else { *v };
                 }
             }
             if want_origin {
