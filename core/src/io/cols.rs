@@ -160,13 +160,17 @@ impl<'a> Keys<'a> {
 
     /// The end of the run of rows from `i` (before `end`) with row `i`'s key.
     fn run_end(&self, i: usize, end: usize) -> usize {
-        on_keys!(self, s => {
-            let end = end.min(s.len());
-            match s.get(i) {
-                Some(&k) if i < end => s[i + 1..end].iter().position(|&x| x != k).map_or(end, |p| i + 1 + p),
-                _ => i + 1,
-            }
-        })
+        on_keys!(self, s => run_end_in(s, i, end))
+    }
+}
+
+/// The end of the run of elements of `s` from `i` (before `end`) equal to
+/// element `i`; `i + 1` when `i` is not before `end`.
+fn run_end_in<T: PartialEq>(s: &[T], i: usize, end: usize) -> usize {
+    let end = end.min(s.len());
+    match s.get(i) {
+        Some(x) if i < end => s[i + 1..end].iter().position(|y| y != x).map_or(end, |p| i + 1 + p),
+        _ => i + 1,
     }
 }
 
@@ -460,16 +464,13 @@ impl<'a> IntCol<'a> {
     /// value, none of them null (`i + 1` when the column has nulls).
     pub(super) fn run_end(&self, i: usize, end: usize) -> usize {
         macro_rules! run {
-            ($a:expr) => {{
-                let v = $a.values();
-                let end = end.min(v.len());
-                match v.get(i) {
-                    Some(&x) if i < end && $a.null_count() == 0 => {
-                        v[i + 1..end].iter().position(|&y| y != x).map_or(end, |p| i + 1 + p)
-                    }
-                    _ => i + 1,
+            ($a:expr) => {
+                if $a.null_count() == 0 {
+                    run_end_in($a.values(), i, end)
+                } else {
+                    i + 1
                 }
-            }};
+            };
         }
         match self {
             IntCol::I64(a) => run!(a),

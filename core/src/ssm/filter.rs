@@ -787,6 +787,17 @@ impl TwoStateShape {
             (false, _) => TwoStateShape::Full,
         }
     }
+
+    /// T x for T = [t00, t10, t01, t11] (column by column) of this shape,
+    /// without the products that the shape makes zero or one.
+    #[inline]
+    pub(crate) fn times(self, [t00, t10, t01, t11]: [f64; 4], [x0, x1]: [f64; 2]) -> [f64; 2] {
+        match self {
+            TwoStateShape::RandomWalkLevel => [x0, t11 * x1],
+            TwoStateShape::Diagonal => [t00 * x0, t11 * x1],
+            TwoStateShape::Full => [t00 * x0 + t01 * x1, t10 * x0 + t11 * x1],
+        }
+    }
 }
 
 /// A S A' for a 2 x 2 matrix A = [a00, a01, a10, a11] (row by row) and a
@@ -895,22 +906,18 @@ fn run_two_states<const UNIT_Z: bool>(
         // this P and the next (the chain from one P to the next is what the
         // loop's speed is bound by).
         let (k0, k1) = if UNIT_Z { (p00 + p01, p01 + p11) } else { (p00 * z0 + p01 * z1, p01 * z0 + p11 * z1) };
-        let ([ta0, ta1], [c00, c01, c11], [g0, g1]) = match (UNIT_Z, shape) {
-            (true, TwoStateShape::RandomWalkLevel) => {
-                ([a0 + c0, t11 * a1 + c1], [p00 + q00, p01 * t11 + q01, (t11 * p11) * t11 + q11], [k0, t11 * k1])
-            }
-            (true, TwoStateShape::Diagonal) => (
-                [t00 * a0 + c0, t11 * a1 + c1],
-                [(t00 * p00) * t00 + q00, (t00 * p01) * t11 + q01, (t11 * p11) * t11 + q11],
-                [t00 * k0, t11 * k1],
-            ),
-            _ => {
+        // (The general loading takes the full products whatever the shape.)
+        let shape = if UNIT_Z { shape } else { TwoStateShape::Full };
+        let tm = [t00, t10, t01, t11];
+        let [ta0, ta1] = shape.times(tm, [a0, a1]);
+        let (ta0, ta1) = (ta0 + c0, ta1 + c1);
+        let [g0, g1] = shape.times(tm, [k0, k1]);
+        let [c00, c01, c11] = match shape {
+            TwoStateShape::RandomWalkLevel => [p00 + q00, p01 * t11 + q01, (t11 * p11) * t11 + q11],
+            TwoStateShape::Diagonal => [(t00 * p00) * t00 + q00, (t00 * p01) * t11 + q01, (t11 * p11) * t11 + q11],
+            TwoStateShape::Full => {
                 let [s00, s01, s11] = congruence2([t00, t01, t10, t11], [p00, p01, p11]);
-                (
-                    [t00 * a0 + t01 * a1 + c0, t10 * a0 + t11 * a1 + c1],
-                    [s00 + q00, s01 + q01, s11 + q11],
-                    [t00 * k0 + t01 * k1, t10 * k0 + t11 * k1],
-                )
+                [s00 + q00, s01 + q01, s11 + q11]
             }
         };
         // The next F without this reading's update, z (T P T' + Q) z' +

@@ -475,11 +475,7 @@ fn run_two_states<const UNIT_Z: bool>(
             let (v, f) = (filt.v[t], filt.f[t]);
             let (k0, k1) = (filt.k[2 * t], filt.k[2 * t + 1]);
             let finv = 1.0 / f;
-            let (g0, g1) = match shape {
-                TwoStateShape::RandomWalkLevel => (k0, t11 * k1),
-                TwoStateShape::Diagonal => (t00 * k0, t11 * k1),
-                TwoStateShape::Full => (t00 * k0 + t01 * k1, t10 * k0 + t11 * k1),
-            };
+            let [g0, g1] = shape.times([t00, t10, t01, t11], [k0, k1]);
             if keep_del {
                 let kr = g0 * r0 + g1 * r1;
                 let knk = g0 * (n00 * g0 + n01 * g1) + g1 * (n01 * g0 + n11 * g1);
