@@ -234,11 +234,7 @@ pub fn find(
     // (The passes differ only in which readings they leave out, so each
     // has its own copy of the observations, not of the whole `clean`; a
     // pass that leaves no reading out has none and reads `clean.y`.)
-    let left_out = |drop: &dyn Fn(usize) -> bool| -> Option<Vec<f64>> {
-        let any = clean.y.iter().enumerate().any(|(k, y)| !y.is_nan() && drop(k));
-        any.then(|| clean.y.iter().enumerate().map(|(k, &y)| if drop(k) { f64::NAN } else { y }).collect())
-    };
-    let first = left_out(&|k| fault_at[k].is_some() || g.gated[k]);
+    let first = left_out(&clean.y, |k| fault_at[k].is_some() || g.gated[k]);
     let spike_pass = |kept: &Option<Vec<f64>>| -> Result<(Vec<f64>, tagwright::tagmodel::Smoothed), String> {
         // The filter pass of `plain` is this one's when it leaves nothing
         // out (the first pass on most tags; the second one after a gated
@@ -255,7 +251,7 @@ pub fn find(
     // (The rare condition first: most readings are far inside the bound.)
     let is_spike =
         |o: &[f64], k: usize| o[k].abs() > cfg.spike && o[k].is_finite() && obs.row(k).is_some() && prior[k].is_none();
-    let second = left_out(&|k| fault_at[k].is_some() || is_spike(&o1, k));
+    let second = left_out(&clean.y, |k| fault_at[k].is_some() || is_spike(&o1, k));
     // The second pass changes nothing when it would leave out exactly the
     // readings the first one did.
     let (y2, y1) = (second.as_deref().unwrap_or(&clean.y), first.as_deref().unwrap_or(&clean.y));
@@ -414,6 +410,13 @@ fn step_size(y: &[f64], k: usize, w: usize) -> (f64, f64) {
     let (ma, mb) = (mean(&after), mean(&before));
     let se = (var(&after, ma) / after.len() as f64 + var(&before, mb) / before.len() as f64).sqrt();
     (ma - mb, se)
+}
+
+/// `y` with the readings `drop(k)` left out (NaN), or `None` when that
+/// leaves no reading out. (Generic, so the test is inlined in the scans.)
+fn left_out(y: &[f64], drop: impl Fn(usize) -> bool) -> Option<Vec<f64>> {
+    let any = y.iter().enumerate().any(|(k, y)| !y.is_nan() && drop(k));
+    any.then(|| y.iter().enumerate().map(|(k, &y)| if drop(k) { f64::NAN } else { y }).collect())
 }
 
 /// Stuck runs. A reading equal to the one before it repeats it; under the

@@ -28,7 +28,7 @@ use std::sync::Arc;
 use serde::Deserialize;
 use serde_json::json;
 use tagwright::plugin::{parse_params, Registry, Step, StepContext, StepError, TagWork};
-use tagwright::series::{Fault, Sampling, Status};
+use tagwright::series::{Fault, Sampling, Status, TagTable};
 use tagwright::tagmodel::{model_for, Fitted, TagObs};
 
 /// Registers the step.
@@ -132,11 +132,14 @@ impl FillStep {
                 }
         };
         let mut obs = TagObs::build(table, work.settings.uncertain_factor, usable, self.max_quiet_us);
-        for k in 0..obs.len() {
-            if let Some(i) = obs.row(k) {
-                if table.fault[i] == Some(Fault::Noise) && table.stat[i].is_finite() {
-                    let w = obs.w[k] * table.stat[i].max(1.0);
-                    obs.set_base_weight(k, w);
+        // (Most tags have no noisy reading: one scan of the faults first.)
+        if table.fault.contains(&Some(Fault::Noise)) {
+            for k in 0..obs.len() {
+                if let Some(i) = obs.row(k) {
+                    if table.fault[i] == Some(Fault::Noise) && table.stat[i].is_finite() {
+                        let w = obs.w[k] * table.stat[i].max(1.0);
+                        obs.set_base_weight(k, w);
+                    }
                 }
             }
         }
@@ -159,45 +162,56 @@ impl FillStep {
         };
         obs.set_noise(fitted.obs_noise());
         let (mean, sd) = fitted.smooth_signal(&obs).map_err(|e| e.to_string())?;
+        let report = |work: &mut TagWork, filled: usize, replaced: usize, null_rows: usize| {
+            work.report.extra.insert(
+                "fill".into(),
+                json!({"rows_inserted": inserts.len(), "filled": filled, "replaced": replaced,
+                       "no_estimate": null_rows, "max_gap_s": self.max_gap_us as f64 / 1e6}),
+            );
+        };
+
+        // On a grid without pseudo-rows (grid point k is row k, the usual
+        // tag), every row gets its `std` in one copy, and only the rows
+        // inserted or rejected are visited below.
+        let open = |s: &Status| matches!(s, Status::Filled | Status::Rejected);
+        let grid = obs.rows_are_grid() && obs.len() == n && sd.len() == n && table.std.len() == n;
+        if grid && !table.status.iter().any(open) {
+            // Nothing to fill.
+            work.table.std.copy_from_slice(&sd);
+            report(work, 0, 0, 0);
+            return Ok(());
+        }
 
         // 3. The runs of rows without an observation (gaps and rejected
         // runs): (first row, end, length of the hole in time).
-        let observed_row: Vec<bool> = {
-            let mut v = vec![false; n];
-            for (k, r) in obs.rows().enumerate() {
-                if let Some(i) = r {
-                    v[i] = obs.y[k].is_finite();
-                }
-            }
-            v
-        };
+        let observed_rows = if grid { Vec::new() } else { observed_row(&obs, n) };
+        let is_observed = |i: usize| if grid { obs.y[i].is_finite() } else { observed_rows[i] };
         let mut holes: Vec<(usize, usize, i64)> = Vec::new();
         let mut i = 0;
         while i < n {
-            if observed_row[i] {
+            if is_observed(i) {
                 i += 1;
                 continue;
             }
             let a = i;
-            while i < n && !observed_row[i] {
+            while i < n && !is_observed(i) {
                 i += 1;
             }
             let before = if a > 0 { table.ts_us[a - 1] } else { table.ts_us[a] - period };
             let after = if i < n { table.ts_us[i] } else { table.ts_us[n - 1] + period };
             holes.push((a, i, after - before - period));
         }
-        drop(observed_row);
+        drop(observed_rows);
 
-        // 4. Write the estimates.
+        // 4. Write the estimates: `visit(k, i)` for grid point k at row i.
         let t = &mut work.table;
         let (mut filled, mut replaced, mut null_rows) = (0usize, 0usize, 0usize);
         let mut hole = holes.iter().peekable();
-        for k in 0..obs.len() {
-            let Some(i) = obs.row(k) else { continue };
+        let mut visit = |t: &mut TagTable, k: usize, i: usize| {
             let (mean, sd) = (mean[k], sd[k]);
             t.std[i] = sd;
-            if !matches!(t.status[i], Status::Filled | Status::Rejected) {
-                continue;
+            if !open(&t.status[i]) {
+                return;
             }
             // (Rows come in order: the holes before this one are passed.)
             while hole.next_if(|h| h.1 <= i).is_some() {}
@@ -224,14 +238,36 @@ impl FillStep {
                 Status::Rejected => t.std[i] = f64::NAN,
                 _ => {}
             }
+        };
+        if grid {
+            // Every row's `std` at once; then only the rows inserted or rejected.
+            t.std.copy_from_slice(&sd);
+            for i in 0..n {
+                if open(&t.status[i]) {
+                    visit(t, i, i);
+                }
+            }
+        } else {
+            for k in 0..obs.len() {
+                if let Some(i) = obs.row(k) {
+                    visit(t, k, i);
+                }
+            }
         }
-        work.report.extra.insert(
-            "fill".into(),
-            json!({"rows_inserted": inserts.len(), "filled": filled, "replaced": replaced, "no_estimate": null_rows,
-                   "max_gap_s": self.max_gap_us as f64 / 1e6}),
-        );
+        report(work, filled, replaced, null_rows);
         Ok(())
     }
+}
+
+/// Whether each table row has an observation in `obs` (a finite reading).
+fn observed_row(obs: &TagObs, n: usize) -> Vec<bool> {
+    let mut v = vec![false; n];
+    for (k, r) in obs.rows().enumerate() {
+        if let Some(i) = r {
+            v[i] = obs.y[k].is_finite();
+        }
+    }
+    v
 }
 
 #[cfg(test)]

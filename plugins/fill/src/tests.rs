@@ -183,3 +183,33 @@ fn a_model_fitted_by_an_earlier_step_is_reused() {
     assert!(reg.make("fill", &serde_json::json!({"max_gap": "0s"})).err().unwrap().contains("max_gap"));
     assert!(reg.make("fill", &serde_json::json!({"gap": "1m"})).err().unwrap().contains("unknown field"));
 }
+
+/// A tag with no gap and no rejected reading (the usual tag) keeps every
+/// value and status, and every row gets the smoother's standard deviation:
+/// the same numbers as the smoother run directly on its readings.
+#[test]
+fn a_tag_with_nothing_to_fill_gets_its_std_on_every_row() {
+    let (_, y) = simulate(21, 800);
+    let ts: Vec<i64> = (0..800).map(|i| i * PERIOD).collect();
+    let mut w = work(ts, y.clone(), Sampling::Regular, "local-level");
+    let params = serde_json::json!({"params": {"sigma2.obs": 0.01, "sigma2.level": 0.0025}});
+    fill(&mut w, params);
+    let t = &w.table;
+    assert_eq!(t.len(), 800);
+    assert!(t.status.iter().all(|&s| s == Status::Ok) && t.fault.iter().all(|f| f.is_none()));
+    assert!(t.value.iter().zip(&y).all(|(a, b)| a.to_bits() == b.to_bits()), "values unchanged");
+    let fill = &w.report.extra["fill"];
+    assert_eq!(
+        (fill["rows_inserted"].as_u64(), fill["filled"].as_u64(), fill["replaced"].as_u64()),
+        (Some(0), Some(0), Some(0))
+    );
+
+    let spec: tagwright::ssm::ModelSpec = "local-level".parse().unwrap();
+    let given = [("sigma2.obs".to_string(), 0.01), ("sigma2.level".to_string(), 0.0025)].into_iter().collect();
+    let f = Fitted::given(&spec, &given).unwrap();
+    let mut obs = TagObs::build(t, 1.0, |_| true, 0);
+    obs.set_noise(f.obs_noise());
+    let direct = f.smooth(&obs, false).unwrap();
+    assert!(t.std.iter().zip(&direct.sd).all(|(a, b)| a.to_bits() == b.to_bits()), "std is the smoother's");
+    assert!(t.std.iter().all(|&s| s > 0.0 && s < 0.1));
+}
