@@ -41,7 +41,9 @@ fn filter_smooth(c: &mut Criterion) {
     }
     g.bench_function("Scalar_no_steady_state", |b| {
         b.iter(|| {
-            let f = filter(&ll, &obs, &FilterOptions { path: Path::Scalar, steady_tol: 0.0, store: true }).unwrap();
+            let f =
+                filter(&ll, &obs, &FilterOptions { path: Path::Scalar, steady_tol: 0.0, store: true, loglik: true })
+                    .unwrap();
             black_box(smooth(&ll, &obs, &f))
         })
     });
@@ -68,9 +70,9 @@ fn filter_smooth(c: &mut Criterion) {
 /// The two-state loops as the cleaning chain runs them: a level + AR(1) at
 /// the chain benchmark's parameters over one 12 h shift at 1 s (43,200
 /// points, 40 of them missing), the filter storing its arrays without the
-/// filtered ones, and the smoother keeping the signal, its variance, the
-/// auxiliary and the deletion residuals (the lean arrays). Filter and
-/// smoother are timed apart.
+/// filtered ones and without summing the log-likelihood, and the smoother
+/// keeping the signal, its variance, the auxiliary and the deletion
+/// residuals (the lean arrays). Filter and smoother are timed apart.
 fn two_state_loops(c: &mut Criterion) {
     let n = 43_200;
     let mut rng = Rng::new(5);
@@ -82,7 +84,7 @@ fn two_state_loops(c: &mut Criterion) {
         .collect();
     let obs = Observations::univariate(&y);
     let model = "local-level+arma(1,0)".parse::<ModelSpec>().unwrap().build(&[0.0025, 1e-10, 0.995, 0.01]).unwrap();
-    let opts = FilterOptions { path: Path::Fixed, steady_tol: 0.0, store: true };
+    let opts = FilterOptions { path: Path::Fixed, steady_tol: 0.0, store: true, loglik: false };
     let mut f = FilterOutput { skip_filtered: true, ..Default::default() };
     let mut g = c.benchmark_group("level_ar1_43k");
     g.throughput(Throughput::Elements(n as u64));

@@ -545,8 +545,7 @@ impl Fitted {
             filt.skip_filtered = true;
             *pass = 0;
             *kept_y = obs.y.as_ptr() as usize;
-            ssm::filter_into(&self.model, &o, &FilterOptions::default(), filt)
-                .map_err(|e| ModelError(e.to_string()))?;
+            ssm::filter_into(&self.model, &o, &stored_pass(), filt).map_err(|e| ModelError(e.to_string()))?;
             let n = obs.len();
             let (mut e, mut v) = (vec![f64::NAN; n], vec![f64::NAN; n]);
             let warm_after = self.model.n_diffuse() + min_warm;
@@ -597,8 +596,7 @@ impl Fitted {
             if !reuse {
                 // The smoother reads the predicted states, not the filtered ones.
                 filt.skip_filtered = true;
-                ssm::filter_into(&self.model, &o, &FilterOptions::default(), filt)
-                    .map_err(|e| ModelError(e.to_string()))?;
+                ssm::filter_into(&self.model, &o, &stored_pass(), filt).map_err(|e| ModelError(e.to_string()))?;
             }
             let filt = &*filt;
             let keep_del = y_all.is_some() && o.p == 1;
@@ -676,6 +674,12 @@ pub struct Innovations {
     pub v: Vec<f64>,
     /// Which filter pass of this thread it came from.
     pass: u64,
+}
+
+/// The options of the passes whose stored arrays the steps read (innovations,
+/// smoother): the defaults, without the log-likelihood (none of them reads it).
+fn stored_pass() -> FilterOptions {
+    FilterOptions { loglik: false, ..Default::default() }
 }
 
 /// A number no earlier filter pass of the process was given (0 is never one).

@@ -127,11 +127,17 @@ pub struct FilterOptions {
     pub steady_tol: f64,
     /// Implementation to use.
     pub path: Path,
+    /// Sum log F for the log-likelihood. A pass whose stored states and
+    /// innovations alone are read (the cleaning steps' passes) may leave it
+    /// out: the two-state loop then skips its running sum of log F (a
+    /// logarithm every few steps, about a tenth of its time), and `loglik`
+    /// and `sum_log_f` are NaN. Everything else is the same, bit for bit.
+    pub loglik: bool,
 }
 
 impl Default for FilterOptions {
     fn default() -> Self {
-        FilterOptions { store: true, steady_tol: 1e-11, path: Path::Auto }
+        FilterOptions { store: true, steady_tol: 1e-11, path: Path::Auto, loglik: true }
     }
 }
 
@@ -743,6 +749,10 @@ fn run_until<D: Dim>(
     }
     out.sum_log_f += logs.total();
     out.finish_loglik();
+    if !opts.loglik {
+        out.sum_log_f = f64::NAN;
+        out.loglik = f64::NAN;
+    }
 }
 
 /// [`FilterOutput::concentrated_loglik`] from the sums themselves.
@@ -858,6 +868,7 @@ fn run_two_states<const UNIT_Z: bool>(
     let store = opts.store;
     let keep_filt = out.keeps_filtered(store);
     let allow_steady = opts.steady_tol > 0.0;
+    let sum_logs = opts.loglik;
     let (z0, z1, d0, h0) = (z[0], z[1], model.d[0], model.h[0]);
     let (c0, c1) = (c[0], c[1]);
     let (mut a0, mut a1) = (a[0], a[1]);
@@ -973,7 +984,9 @@ fn run_two_states<const UNIT_Z: bool>(
                 p11 = c11 - (g1 * g1) * finv;
                 f_next = f_plain - (zg * zg) * finv;
                 sum_v2_f += v * e;
-                logs.add(f);
+                if sum_logs {
+                    logs.add(f);
+                }
                 nobs += 1;
                 if store {
                     out.v[t] = v;

@@ -121,7 +121,7 @@ fn smoother_and_loglik_match_the_oracle_on_every_path() {
     for path in [Path::Fixed, Path::General] {
         for steady_tol in [0.0, 1e-11] {
             let obs = Observations::univariate(&y);
-            let f = filter(&model, &obs, &FilterOptions { store: true, steady_tol, path }).unwrap();
+            let f = filter(&model, &obs, &FilterOptions { store: true, steady_tol, path, loglik: true }).unwrap();
             assert!(close(f.loglik, ll, 1e-10), "{path:?}: loglik {} vs oracle {ll}", f.loglik);
             let s = smooth(&model, &obs, &f);
             assert_all_close("smoothed state", &s.state, &sm, 1e-8);
@@ -267,7 +267,8 @@ fn local_trend_fixed_and_general_paths_agree() {
     }
     let obs = Observations::univariate(&y);
     let ff = filter(&model, &obs, &FilterOptions { path: Path::Fixed, ..Default::default() }).unwrap();
-    let fg = filter(&model, &obs, &FilterOptions { path: Path::General, steady_tol: 0.0, store: true }).unwrap();
+    let fg = filter(&model, &obs, &FilterOptions { path: Path::General, steady_tol: 0.0, store: true, loglik: true })
+        .unwrap();
     assert!(ff.steady_from.is_some(), "the steady state should be reached");
     assert!(close(ff.loglik, fg.loglik, 1e-9));
     let sf = smooth(&model, &obs, &ff);
@@ -351,7 +352,8 @@ fn two_state_loop_matches_the_matrix_code() {
     for gaps in [false, true] {
         let obs = Observations { y: &y, p: 1, dt: gaps.then_some(&dt[..]), h_scale: Some(&w) };
         for steady_tol in [0.0, 1e-11] {
-            let run = |path| filter(&model, &obs, &FilterOptions { store: true, steady_tol, path }).unwrap();
+            let run =
+                |path| filter(&model, &obs, &FilterOptions { store: true, steady_tol, path, loglik: true }).unwrap();
             let (fast, general) = (run(Path::Fixed), run(Path::General));
             assert_eq!(fast.path, Path::Fixed);
             assert!(close(fast.loglik, general.loglik, 1e-12), "loglik {} vs {}", fast.loglik, general.loglik);
@@ -423,7 +425,8 @@ fn the_lean_smoother_keeps_exactly_what_the_full_one_gives() {
         }
         let obs = Observations { y: &y, p: 1, dt: Some(&dt), h_scale: Some(&w) };
         for steady_tol in [0.0, 1e-11] {
-            let f = filter(&model, &obs, &FilterOptions { store: true, steady_tol, path: Path::Auto }).unwrap();
+            let f = filter(&model, &obs, &FilterOptions { store: true, steady_tol, path: Path::Auto, loglik: true })
+                .unwrap();
             let run = |lean| {
                 let mut s = SmootherOutput { keep_aux: true, keep_del: true, lean, ..Default::default() };
                 smooth_into(&model, &obs, &f, &mut s);
@@ -496,5 +499,31 @@ fn a_run_without_the_filtered_arrays_smooths_the_same() {
         assert!(same(&strip(&lean), &strip(&full)), "{text}: the filter runs differ");
         let (sl, sf) = (smooth(&model, &obs, &lean), smooth(&model, &obs, &full));
         assert!(same(&sl, &sf), "{text}: the smoothers differ");
+    }
+}
+
+#[test]
+fn a_run_without_the_loglik_stores_the_same_arrays() {
+    // `loglik: false` leaves the log-likelihood and its sum of log F NaN
+    // and changes nothing else, bit for bit, on every path, with irregular
+    // steps and weights as the cleaning steps give them.
+    for (text, params) in ONE_EACH_PATH {
+        let spec: ModelSpec = text.parse().unwrap();
+        let model = spec.build(params).unwrap();
+        let mut y = simulate(&model, 800, &mut Rng::new(4));
+        y[5] = f64::NAN;
+        y[400] = f64::NAN;
+        let dt: Vec<f64> = (0..800).map(|t| if t == 300 { 3.0 } else { 1.0 }).collect();
+        let w: Vec<f64> = (0..800).map(|t| if t % 97 == 0 { 4.0 } else { 1.0 }).collect();
+        let obs = Observations { y: &y, p: 1, dt: Some(&dt), h_scale: Some(&w) };
+        let with = filter(&model, &obs, &FilterOptions::default()).unwrap();
+        let without = filter(&model, &obs, &FilterOptions { loglik: false, ..Default::default() }).unwrap();
+        assert!(with.loglik.is_finite() && with.sum_log_f.is_finite(), "{text}");
+        assert!(without.loglik.is_nan() && without.sum_log_f.is_nan(), "{text}");
+        let strip = |f: &FilterOutput| FilterOutput { loglik: 0.0, sum_log_f: 0.0, ..f.clone() };
+        // (Compared as text: NaN innovations are not equal to themselves.)
+        assert_eq!(format!("{:?}", strip(&with)), format!("{:?}", strip(&without)), "{text}");
+        let (s1, s2) = (smooth(&model, &obs, &with), smooth(&model, &obs, &without));
+        assert_eq!(format!("{s1:?}"), format!("{s2:?}"), "{text}: the smoothers differ");
     }
 }
