@@ -188,6 +188,20 @@ pub(super) struct Chunk {
     pub quality: Vec<Quality>,
     /// Row numbers as the errors show them (1-based; CSV header is row 1).
     pub row: RowNumbers,
+    /// The time order and non-finite count of the rows appended so far
+    /// through [`Chunk::scan_appended`], counted while those rows were
+    /// still in cache.
+    scan: Scan,
+}
+
+/// What [`Chunk::scan_appended`] counted.
+#[derive(Debug, Clone, Copy, Default)]
+struct Scan {
+    /// Rows counted (from the first); the counts stand for the chunk only
+    /// when this is all of its rows.
+    rows: usize,
+    order: Order,
+    non_finite: usize,
 }
 
 /// The file row numbers of a chunk's rows, kept as runs of consecutive
@@ -228,7 +242,28 @@ impl Chunk {
             value: Vec::with_capacity(n),
             quality: Vec::with_capacity(n),
             row: RowNumbers::default(),
+            scan: Scan::default(),
         }
+    }
+
+    /// Counts the time order and the non-finite values of the rows from
+    /// `from` on, just appended (in cache: the chunk is read again later
+    /// only when these counts do not cover it).
+    pub(super) fn scan_appended(&mut self, from: usize) {
+        if self.scan.rows != from || from > self.ts.len() || self.value.len() != self.ts.len() {
+            return;
+        }
+        // (With the last row before them, for the seam.)
+        let o = Order::of(&self.ts[from.saturating_sub(1)..]);
+        self.scan.order.back += o.back;
+        self.scan.order.repeats += o.repeats;
+        self.scan.non_finite += self.value[from..].iter().filter(|v| !v.is_finite()).count();
+        self.scan.rows = self.ts.len();
+    }
+
+    /// [`Chunk::scan_appended`]'s counts when they cover every row.
+    fn scanned(&self) -> Option<Scan> {
+        (self.scan.rows == self.ts.len()).then_some(self.scan)
     }
 
     pub(super) fn push(&mut self, ts: i64, local: bool, value: f64, quality: Quality, row: u64) {
@@ -275,6 +310,7 @@ impl Chunk {
 
 /// How a run of times is ordered: steps back, and times equal to the one
 /// before.
+#[derive(Debug, Clone, Copy, Default)]
 struct Order {
     back: usize,
     repeats: usize,
@@ -601,6 +637,8 @@ impl InputSet {
         let mut fold = FoldState::default();
         let (mut sorted, mut repeats) = (true, false);
         for (f, mut c) in chunks {
+            // The counts taken as the rows were read, when they cover the chunk.
+            let scanned = c.scanned();
             // Local times to UTC, in file order (the daylight-saving rule follows the rows).
             if !c.local.is_empty() {
                 for i in 0..c.len() {
@@ -616,13 +654,20 @@ impl InputSet {
                     }
                 }
             }
-            // One pass over the times finds the steps back and the repeats.
-            let mut order = Order::of(&c.ts);
+            // One pass over the times finds the steps back and the repeats
+            // (none when they were counted as the rows were read and no
+            // local time has changed since).
+            let mut order = match scanned {
+                Some(s) if c.local.is_empty() => s.order,
+                _ => Order::of(&c.ts),
+            };
+            let mut filtered = false;
             if let Some((from, to)) = self.window {
                 let (lo, hi) = order.range(&c.ts);
                 if lo < from || hi >= to {
                     c = c.filter(|t| t >= from && t < to);
                     order = Order::of(&c.ts);
+                    filtered = true;
                 }
             }
             counts.rows += c.len();
@@ -630,7 +675,10 @@ impl InputSet {
             // (Counted first, without writing: most chunks hold none; where
             // some are, every reading is written through a select, with no
             // branch per reading.)
-            let non_finite = c.value.iter().filter(|v| !v.is_finite()).count();
+            let non_finite = match scanned {
+                Some(s) if !filtered => s.non_finite,
+                _ => c.value.iter().filter(|v| !v.is_finite()).count(),
+            };
             if non_finite > 0 {
                 counts.non_finite += non_finite;
                 for (v, q) in c.value.iter_mut().zip(c.quality.iter_mut()) {

@@ -664,6 +664,39 @@ fn row_numbers_are_runs_of_consecutive_rows() {
     assert_eq!(r.runs.len(), 2);
 }
 
+/// The order and non-finite counts taken piece by piece as rows are
+/// appended equal those of the whole chunk (a step back or a repeat at a
+/// seam included), and stand only while every row went through them.
+#[test]
+fn counts_taken_while_appending_equal_the_whole_chunks() {
+    let pieces: [(&[i64], &[f64]); 4] = [
+        (&[1, 2, 3], &[1.0, f64::NAN, 2.0]),
+        (&[3, 4], &[f64::INFINITY, 1.0]),              // a repeat at the seam
+        (&[2, 5, 5], &[0.0, -0.0, f64::NEG_INFINITY]), // a step back at the seam, a repeat inside
+        (&[], &[]),
+    ];
+    let mut c = Chunk::with_capacity(0);
+    for (ts, v) in pieces {
+        let from = c.ts.len();
+        c.ts.extend_from_slice(ts);
+        c.value.extend_from_slice(v);
+        c.quality.extend(std::iter::repeat_n(Quality::Good, ts.len()));
+        c.scan_appended(from);
+    }
+    let whole = Order::of(&c.ts);
+    let s = c.scanned().expect("every row counted");
+    assert_eq!((s.order.back, s.order.repeats), (whole.back, whole.repeats));
+    assert_eq!((s.order.back, s.order.repeats), (1, 2));
+    assert_eq!(s.non_finite, c.value.iter().filter(|v| !v.is_finite()).count());
+    assert_eq!(s.non_finite, 3);
+    // A row added another way: the counts no longer stand.
+    c.push(9, false, 1.0, Quality::Good, 99);
+    assert!(c.scanned().is_none());
+    c.push(10, false, 1.0, Quality::Good, 100);
+    c.scan_appended(c.ts.len() - 1);
+    assert!(c.scanned().is_none(), "a row left out of the counts stays out");
+}
+
 /// Runs of equal dictionary keys and quality codes are read a run at a
 /// time; a null inside a run still stops it, at the right row.
 #[test]

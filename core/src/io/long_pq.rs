@@ -373,7 +373,8 @@ impl ParquetLong {
             let take = ((run.len - cursor.1) as usize).min(n - i);
             let Some(chunk) = out.get_mut(&run.tag) else { break };
             let first_row = run.start + cursor.1 + 1;
-            chunk.row.push_run(chunk.ts.len(), first_row, take);
+            let from = chunk.ts.len();
+            chunk.row.push_run(from, first_row, take);
             chunk.note_local(times.local, take);
             if let Err(k) = times.extend_into(&mut chunk.ts, i, take) {
                 let row = first_row + (k - i) as u64;
@@ -383,6 +384,7 @@ impl ParquetLong {
                 });
             }
             values.extend_into(&mut chunk.value, i, take);
+            chunk.scan_appended(from);
             match &quality {
                 None => chunk.quality.extend(std::iter::repeat_n(Quality::Good, take)),
                 Some((col, map)) => {
