@@ -155,6 +155,26 @@ pub struct TagTable {
     pub sampling: Sampling,
 }
 
+/// A table that passed [`TagTable::check`] (column lengths, times strictly
+/// increasing, every changed row decided by a step). It can only be read,
+/// so it stays checked; a writer need not scan its times again.
+#[derive(Debug, Clone)]
+pub struct CheckedTable(TagTable);
+
+impl CheckedTable {
+    /// The table itself (to change it, and check it again).
+    pub fn into_table(self) -> TagTable {
+        self.0
+    }
+}
+
+impl std::ops::Deref for CheckedTable {
+    type Target = TagTable;
+    fn deref(&self) -> &TagTable {
+        &self.0
+    }
+}
+
 impl TagTable {
     /// The table of a freshly read tag: every reading kept as its own value.
     pub fn from_series(s: &TagSeries, period_us: i64, sampling: Sampling) -> Self {
@@ -296,6 +316,15 @@ impl TagTable {
             }
         }
         Ok(())
+    }
+
+    /// [`TagTable::check`], keeping the proof: the table as a
+    /// [`CheckedTable`], or the table back with the reason.
+    pub fn checked(self) -> Result<CheckedTable, Box<(TagTable, String)>> {
+        match self.check() {
+            Ok(()) => Ok(CheckedTable(self)),
+            Err(e) => Err(Box::new((self, e))),
+        }
     }
 
     /// True when a row of `rows` has a status other than `ok` or a fault;

@@ -108,13 +108,30 @@ struct Unit {
 
 /// The result of one tag.
 struct TagResult {
-    table: TagTable,
+    table: ResultTable,
     work_report: crate::plugin::TagReport,
     state: BTreeMap<String, serde_json::Value>,
     counts: crate::series::ReadCounts,
     error: Option<String>,
     step_names: Vec<String>,
     group: Option<String>,
+}
+
+/// A tag's table for the writer: checked after its chain (the writer need
+/// not scan its times again), or a failed tag's raw readings.
+enum ResultTable {
+    Checked(crate::series::CheckedTable),
+    Raw(TagTable),
+}
+
+impl std::ops::Deref for ResultTable {
+    type Target = TagTable;
+    fn deref(&self) -> &TagTable {
+        match self {
+            ResultTable::Checked(t) => t,
+            ResultTable::Raw(t) => t,
+        }
+    }
 }
 
 /// Runs a pipeline. `progress(done, total)` is called after each chunk.
@@ -390,11 +407,15 @@ fn run_unit(
             // A failed tag keeps its raw readings, read again from the input
             // (failures are rare; the success path keeps no copy); the
             // provenance says why.
+            let raw = |(t, e): (TagTable, Option<String>)| (ResultTable::Raw(t), e);
             let (table, error) = match &error {
-                Some(e) => failed_table(input, &w.table, e.clone()),
-                None => match w.table.check() {
-                    Ok(()) => (w.table, None),
-                    Err(e) => failed_table(input, &w.table, format!("internal check failed: {e}")),
+                Some(e) => raw(failed_table(input, &w.table, e.clone())),
+                None => match w.table.checked() {
+                    Ok(t) => (ResultTable::Checked(t), None),
+                    Err(failed) => {
+                        let (t, e) = *failed;
+                        raw(failed_table(input, &t, format!("internal check failed: {e}")))
+                    }
                 },
             };
             TagResult {
@@ -520,7 +541,10 @@ fn write_result(
         prov.event(e);
     }
     state_out.insert(r.table.tag.clone(), r.state);
-    writer.write_tag_owned(r.table)
+    match r.table {
+        ResultTable::Checked(t) => writer.write_checked(t),
+        ResultTable::Raw(t) => writer.write_tag_owned(t),
+    }
 }
 
 /// Statuses in output order, for summaries.

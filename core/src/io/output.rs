@@ -47,7 +47,7 @@ use super::output_encode::{spawn, Buffer, Encoder, Worker};
 use super::output_sink::Sink;
 use super::{IoError, Result};
 use crate::pipeline::Compression;
-use crate::series::TagTable;
+use crate::series::{CheckedTable, TagTable};
 
 /// Rows per row group of `cleaned.parquet` (about one million).
 pub const ROW_GROUP_ROWS: usize = 1 << 20;
@@ -199,7 +199,7 @@ impl CleanedWriter {
     /// Appends one tag's rows. Tags must come in sorted order, each once;
     /// rows in strictly increasing time; all columns of equal length.
     pub fn write_tag(&mut self, t: &TagTable) -> Result<()> {
-        self.check(t)?;
+        self.check(t, true)?;
         self.append(t)
     }
 
@@ -207,7 +207,19 @@ impl CleanedWriter {
     /// half a batch goes to the encoder as it is, its columns moved rather
     /// than copied into the buffer.
     pub fn write_tag_owned(&mut self, t: TagTable) -> Result<()> {
-        self.check(&t)?;
+        self.check(&t, true)?;
+        self.send_owned(t)
+    }
+
+    /// As [`CleanedWriter::write_tag_owned`], for a table that passed
+    /// [`TagTable::check`]: its times are not scanned again (the tag order
+    /// and the column lengths still are).
+    pub fn write_checked(&mut self, t: CheckedTable) -> Result<()> {
+        self.check(&t, false)?;
+        self.send_owned(t.into_table())
+    }
+
+    fn send_owned(&mut self, t: TagTable) -> Result<()> {
         let n = t.ts_us.len();
         if n < BATCH_ROWS / 2 {
             return self.append(&t);
@@ -218,8 +230,9 @@ impl CleanedWriter {
         self.send(Buffer::from_table(t))
     }
 
-    /// Checks a table before it is written; remembers its tag.
-    fn check(&mut self, t: &TagTable) -> Result<()> {
+    /// Checks a table before it is written (its times too, with `times`);
+    /// remembers its tag.
+    fn check(&mut self, t: &TagTable, times: bool) -> Result<()> {
         let bad = |reason: String| IoError::BadTable { path: self.path.clone(), tag: t.tag.clone(), reason };
         let n = t.ts_us.len();
         let lens = [t.raw.len(), t.value.len(), t.std.len(), t.status.len(), t.fault.len()];
@@ -234,7 +247,7 @@ impl CleanedWriter {
                 )));
             }
         }
-        if let Some(i) = crate::series::first_not_increasing(&t.ts_us) {
+        if let Some(i) = times.then(|| crate::series::first_not_increasing(&t.ts_us)).flatten() {
             return Err(bad(format!("times do not increase at row {i}")));
         }
         self.last_tag = Some(t.tag.clone());

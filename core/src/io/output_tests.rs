@@ -221,14 +221,14 @@ fn handing_tables_over_writes_the_same_rows_as_copying_them() {
     let sizes = [5, BATCH_ROWS / 2 + 3, 17, 40, BATCH_ROWS + 9, 0, BATCH_ROWS / 2 - 1, 2 * BATCH_ROWS];
     let tables: Vec<TagTable> = sizes.iter().enumerate().map(|(k, &n)| table(&format!("T{k:02}"), n)).collect();
     let mut files = Vec::new();
-    for (name, owned, threads) in [("copy", false, 2), ("owned", true, 2), ("owned1", true, 1)] {
+    for (name, how, threads) in [("copy", 0, 2), ("owned", 1, 2), ("owned1", 1, 1), ("checked", 2, 2)] {
         let path = dir.path().join(format!("{name}.parquet"));
         let mut w = CleanedWriter::create_with_threads(&path, "r", Compression::Zstd, threads).unwrap();
         for t in &tables {
-            if owned {
-                w.write_tag_owned(t.clone()).unwrap();
-            } else {
-                w.write_tag(t).unwrap();
+            match how {
+                0 => w.write_tag(t).unwrap(),
+                1 => w.write_tag_owned(t.clone()).unwrap(),
+                _ => w.write_checked(t.clone().checked().unwrap()).unwrap(),
             }
         }
         assert_eq!(w.close().unwrap(), sizes.iter().sum::<usize>() as u64);
@@ -238,10 +238,18 @@ fn handing_tables_over_writes_the_same_rows_as_copying_them() {
     // Page boundaries follow the batches, so the two paths may differ in
     // bytes; each is the same whatever the thread count.
     assert!(files[1] == files[2], "same bytes from 1 and 2 threads");
+    assert!(files[1] == files[3], "a checked table is written as an unchecked one");
     // The owned path checks the contract as the copying one does.
     let mut w = CleanedWriter::create(&dir.path().join("bad.parquet"), "r", Compression::Zstd).unwrap();
     w.write_tag_owned(table("B", BATCH_ROWS)).unwrap();
     assert!(matches!(w.write_tag_owned(table("A", BATCH_ROWS)), Err(IoError::BadTable { .. })));
+}
+
+/// A table whose time repeats at row 2.
+fn t_repeat(tag: &str) -> TagTable {
+    let mut t = table(tag, 3);
+    t.ts_us[2] = t.ts_us[1];
+    t
 }
 
 #[test]
@@ -261,6 +269,12 @@ fn contract_breaches_are_errors_and_leave_no_file() {
     let mut t = table("D", 3);
     t.std.pop();
     assert!(w.write_tag(&t).unwrap_err().to_string().contains("column lengths differ"));
+    // A table whose times do not increase is never a checked one; a checked
+    // one still keeps the tag order.
+    let (t, e) = *t_repeat("E").checked().unwrap_err();
+    assert!(e.contains("times do not increase at row 2") && t.tag == "E", "{e}");
+    let e = w.write_checked(table("A", 2).checked().unwrap()).unwrap_err().to_string();
+    assert!(e.contains("`A` comes after `B`"), "{e}");
     drop(w);
     assert_eq!(std::fs::read_dir(dir.path()).unwrap().count(), 0, "dropped unclosed: nothing left");
 }

@@ -508,14 +508,17 @@ fn noise_windows(e: &[f64], obs: &TagObs, cfg: &Config) -> Vec<(usize, f64, f64)
         return out;
     }
     let cap = cfg.spike * cfg.spike;
-    let mut sum = vec![0.0; m + 1];
-    let mut pos = vec![0usize; m + 1];
-    // (The running sums are carried in registers, not reloaded from the arrays.)
+    // (The running sums are carried in registers and pushed, not reloaded
+    // from arrays zeroed first.)
+    let (mut sum, mut pos) = (Vec::with_capacity(m + 1), Vec::with_capacity(m + 1));
+    sum.push(0.0);
+    pos.push(0usize);
     let (mut s, mut p) = (0.0, 0usize);
-    for ((&k, sum), pos) in idx.iter().zip(&mut sum[1..]).zip(&mut pos[1..]) {
+    for &k in &idx {
         s += (e[k] * e[k]).min(cap);
         p += usize::from(e[k] > 0.0);
-        (*sum, *pos) = (s, p);
+        sum.push(s);
+        pos.push(p);
     }
     let bound = chi2_upper_quantile(cfg.noise_alpha, w as f64);
     let half = w / 2;
