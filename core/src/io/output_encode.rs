@@ -265,7 +265,11 @@ impl Encoder {
         let rows = self.group_rows as u64;
         let plain_rows = [g.ts.rows(), g.raw.rows(), g.value.rows(), g.std.rows()];
         if g.keys.iter().any(|k| k.rows() as u64 != rows) || plain_rows.iter().any(|&r| r != rows) {
-            return Err(write_error(partial, format!("a column's rows differ from the row group's {rows}")));
+            let keys: Vec<usize> = g.keys.iter().map(|k| k.rows()).collect();
+            return Err(write_error(
+                partial,
+                format!("a column's rows differ from the row group's {rows} (ts, raw, value, std: {plain_rows:?}; tag, status, fault: {keys:?})"),
+            ));
         }
         let Group { ts, raw, value, std, keys } = g;
         let own = || Ok::<_, ParquetError>([(TS, ts.finish()?), (VALUE, value.finish()?), (STD, std.finish()?)]);

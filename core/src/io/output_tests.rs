@@ -366,3 +366,83 @@ proptest! {
         prop_assert_eq!(rows, want);
     }
 }
+
+/// The float columns are split into byte streams here, a page at a time:
+/// pages of `SPLIT_PAGE_ROWS` rows across tags, whose headers and chunk
+/// metadata say byte-stream-split (never plain), read back as the values
+/// written, nulls and NaNs and signed zeros included; the streams are those
+/// of Parquet's format (byte j of value i at j * n + i).
+#[test]
+fn float_columns_are_split_a_page_at_a_time() {
+    use super::super::output_plain::SPLIT_PAGE_ROWS;
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("split.parquet");
+    let n = 2 * SPLIT_PAGE_ROWS + 333;
+    let mut a = table("A", n);
+    for i in (0..n).step_by(997) {
+        a.raw[i] = f64::NAN; // a NaN reading: a NaN, not a null, in raw
+        a.decide(i, Status::Rejected, Some(Fault::Spike), 1, 9.0, 5.0);
+        a.value[i] = f64::NAN; // null in value
+    }
+    a.value[5] = -0.0;
+    a.std[7] = 1e-300;
+    let mut b = table("B", SPLIT_PAGE_ROWS - 1); // a tag inside one page
+    b.insert_rows(&[b.ts_us[3] + 1, b.ts_us[3] + 2], 0); // raw null on inserted rows
+    let c = table("C", 3 * SPLIT_PAGE_ROWS); // whole pages straight through
+    let tables = [a, b, c];
+    for threads in [1, 2] {
+        let mut w = CleanedWriter::create_with_threads(&path, "r", Compression::Zstd, threads).unwrap();
+        for t in &tables {
+            w.write_tag(t).unwrap();
+        }
+        w.close().unwrap();
+        assert_eq!(read_back(&path).1, expected_rows(&tables), "{threads} threads");
+    }
+
+    let r = SerializedFileReader::new(std::fs::File::open(&path).unwrap()).unwrap();
+    let rows: usize = tables.iter().map(|t| t.len()).sum();
+    for (i, col) in r.metadata().row_group(0).columns().iter().enumerate() {
+        let name = col.column_path().string();
+        if !["raw", "value", "std"].contains(&name.as_str()) {
+            continue;
+        }
+        let enc: Vec<Encoding> = col.encodings().collect();
+        assert!(enc.contains(&Encoding::BYTE_STREAM_SPLIT) && !enc.contains(&Encoding::PLAIN), "{name}: {enc:?}");
+        // (Read back as a full list or as a mask of encodings.)
+        let page_encodings: Vec<Encoding> = match (col.page_encoding_stats(), col.page_encoding_stats_mask()) {
+            (Some(stats), _) => stats.iter().map(|s| s.encoding).collect(),
+            (None, Some(mask)) => mask.encodings().collect(),
+            (None, None) => panic!("{name}: no page encoding stats"),
+        };
+        assert!(page_encodings.contains(&Encoding::BYTE_STREAM_SPLIT), "{name}: {page_encodings:?}");
+        assert!(!page_encodings.contains(&Encoding::PLAIN), "{name}: {page_encodings:?}");
+        let mut pages = r.get_row_group(0).unwrap().get_column_page_reader(i).unwrap();
+        let mut values = 0;
+        while let Some(p) = pages.get_next_page().unwrap() {
+            assert_eq!(p.encoding(), Encoding::BYTE_STREAM_SPLIT, "{name}: page header");
+            assert!(p.num_values() as usize <= SPLIT_PAGE_ROWS, "{name}: page of {}", p.num_values());
+            values += p.num_values() as usize;
+        }
+        assert_eq!(values, rows, "{name}: rows in pages");
+    }
+
+    // The layout itself, against the format's definition written out, for
+    // counts that are and are not a multiple of 8.
+    for n in [0, 1, 7, 8, 21, 24, 64, 67] {
+        let v: Vec<f64> = (0..n).map(|i| (i as f64 - 7.5) * 1.25e-3 + f64::from(i as u32).sqrt()).collect();
+        let v: Vec<f64> = v
+            .into_iter()
+            .enumerate()
+            .map(|(i, x)| [f64::NAN, -0.0, f64::INFINITY].get(i % 11).copied().unwrap_or(x))
+            .collect();
+        let (mut out, mut scratch) = (Vec::new(), Vec::new());
+        super::super::output_plain::split_streams(&v, &mut out, &mut scratch);
+        assert_eq!(out.len(), n, "{n} values");
+        let bytes: Vec<u8> = out.iter().flat_map(|w| w.to_le_bytes()).collect();
+        for (i, x) in v.iter().enumerate() {
+            for (j, byte) in x.to_le_bytes().into_iter().enumerate() {
+                assert_eq!(bytes[j * n + i], byte, "{n} values: value {i}, byte {j}");
+            }
+        }
+    }
+}
