@@ -325,29 +325,17 @@ impl PlainChunk {
 pub(super) fn split_streams(v: &[f64], out: &mut Vec<f64>, scratch: &mut Vec<u8>) {
     let n = v.len();
     out.clear();
-    let blocks = v.chunks_exact(8);
     if n.is_multiple_of(8) {
         // Stream j is words j * n/8 .. (j + 1) * n/8.
         out.resize(n, 0.0);
         let per = n / 8;
-        for (b, block) in blocks.enumerate() {
-            let x = transpose8(std::array::from_fn(|i| block[i].to_bits()));
-            for (j, &word) in x.iter().enumerate() {
-                out[j * per + b] = f64::from_bits(word);
-            }
-        }
+        transposed_blocks(v, |j, b, word| out[j * per + b] = f64::from_bits(word));
         return;
     }
     scratch.clear();
     scratch.resize(8 * n, 0);
-    let tail = blocks.remainder().len();
-    for (b, block) in blocks.enumerate() {
-        let x = transpose8(std::array::from_fn(|i| block[i].to_bits()));
-        for (j, word) in x.iter().enumerate() {
-            scratch[j * n + 8 * b..j * n + 8 * b + 8].copy_from_slice(&word.to_le_bytes());
-        }
-    }
-    for i in n - tail..n {
+    transposed_blocks(v, |j, b, word| scratch[j * n + 8 * b..j * n + 8 * b + 8].copy_from_slice(&word.to_le_bytes()));
+    for i in n - n % 8..n {
         for (j, byte) in v[i].to_bits().to_le_bytes().into_iter().enumerate() {
             scratch[j * n + i] = byte;
         }
@@ -357,6 +345,18 @@ pub(super) fn split_streams(v: &[f64], out: &mut Vec<f64>, scratch: &mut Vec<u8>
         word.copy_from_slice(b);
         f64::from_le_bytes(word)
     }));
+}
+
+/// `put(j, b, word)` for stream j of each whole block b of eight values:
+/// byte i of `word` is byte j of value 8 b + i.
+#[inline]
+fn transposed_blocks(v: &[f64], mut put: impl FnMut(usize, usize, u64)) {
+    for (b, block) in v.chunks_exact(8).enumerate() {
+        let x = transpose8(std::array::from_fn(|i| block[i].to_bits()));
+        for (j, &word) in x.iter().enumerate() {
+            put(j, b, word);
+        }
+    }
 }
 
 /// The transpose of 8 words as an 8 x 8 matrix of bytes (byte i of word

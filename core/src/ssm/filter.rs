@@ -297,8 +297,14 @@ impl FilterOutput {
         concentrated_loglik_of(self.nobs, self.n_diffuse_obs, self.sum_v2_f, self.sum_log_f, self.sum_log_f_inf)
     }
 
-    /// Assembles the log-likelihood from the accumulated sums.
-    pub(crate) fn finish_loglik(&mut self) {
+    /// Assembles the log-likelihood from the accumulated sums; without
+    /// `loglik` (see [`FilterOptions::loglik`]) it and the sum of log F are NaN.
+    pub(crate) fn finish_loglik(&mut self, loglik: bool) {
+        if !loglik {
+            self.sum_log_f = f64::NAN;
+            self.loglik = f64::NAN;
+            return;
+        }
         let n_all = (self.nobs + self.n_diffuse_obs) as f64;
         self.loglik = -0.5 * (n_all * LN_2PI + self.sum_log_f_inf + self.sum_log_f + self.sum_v2_f);
     }
@@ -748,11 +754,7 @@ fn run_until<D: Dim>(
         out.diffuse_end = n;
     }
     out.sum_log_f += logs.total();
-    out.finish_loglik();
-    if !opts.loglik {
-        out.sum_log_f = f64::NAN;
-        out.loglik = f64::NAN;
-    }
+    out.finish_loglik(opts.loglik);
 }
 
 /// [`FilterOutput::concentrated_loglik`] from the sums themselves.

@@ -181,11 +181,7 @@ pub(crate) fn filter(model: &StateSpace, obs: &Observations, opts: &FilterOption
     out.sum_v2_f = sum_v2_f;
     out.sum_log_f = sum_log_f + logs.total();
     out.nobs = nobs;
-    out.finish_loglik();
-    if !opts.loglik {
-        out.sum_log_f = f64::NAN;
-        out.loglik = f64::NAN;
-    }
+    out.finish_loglik(opts.loglik);
 }
 
 pub(crate) fn smooth(model: &StateSpace, obs: &Observations, filt: &FilterOutput, out: &mut SmootherOutput) {

@@ -475,16 +475,26 @@ fn the_lean_smoother_keeps_exactly_what_the_full_one_gives() {
     }
 }
 
+/// A model of each path of [`ONE_EACH_PATH`] with 800 of its own values
+/// (two of them missing), drawn with `seed`.
+fn one_each_path_with_gaps(seed: u64) -> Vec<(&'static str, StateSpace, Vec<f64>)> {
+    ONE_EACH_PATH
+        .iter()
+        .map(|&(text, params)| {
+            let model = text.parse::<ModelSpec>().unwrap().build(params).unwrap();
+            let mut y = simulate(&model, 800, &mut Rng::new(seed));
+            y[5] = f64::NAN;
+            y[400] = f64::NAN;
+            (text, model, y)
+        })
+        .collect()
+}
+
 #[test]
 fn a_run_without_the_filtered_arrays_smooths_the_same() {
     // `skip_filtered` leaves a_filt and p_filt empty and changes nothing
     // else, on every path (scalar, two states, matrices).
-    for (text, params) in ONE_EACH_PATH {
-        let spec: ModelSpec = text.parse().unwrap();
-        let model = spec.build(params).unwrap();
-        let mut y = simulate(&model, 800, &mut Rng::new(3));
-        y[5] = f64::NAN;
-        y[400] = f64::NAN;
+    for (text, model, y) in one_each_path_with_gaps(3) {
         let obs = Observations { y: &y, p: 1, dt: None, h_scale: None };
         let full = filter(&model, &obs, &FilterOptions::default()).unwrap();
         let mut lean = FilterOutput { skip_filtered: true, ..Default::default() };
@@ -507,12 +517,7 @@ fn a_run_without_the_loglik_stores_the_same_arrays() {
     // `loglik: false` leaves the log-likelihood and its sum of log F NaN
     // and changes nothing else, bit for bit, on every path, with irregular
     // steps and weights as the cleaning steps give them.
-    for (text, params) in ONE_EACH_PATH {
-        let spec: ModelSpec = text.parse().unwrap();
-        let model = spec.build(params).unwrap();
-        let mut y = simulate(&model, 800, &mut Rng::new(4));
-        y[5] = f64::NAN;
-        y[400] = f64::NAN;
+    for (text, model, y) in one_each_path_with_gaps(4) {
         let dt: Vec<f64> = (0..800).map(|t| if t == 300 { 3.0 } else { 1.0 }).collect();
         let w: Vec<f64> = (0..800).map(|t| if t % 97 == 0 { 4.0 } else { 1.0 }).collect();
         let obs = Observations { y: &y, p: 1, dt: Some(&dt), h_scale: Some(&w) };

@@ -317,7 +317,7 @@ pub fn find(
         Vec::new()
     } else {
         let set_aside = |k: usize| fault_at[k].is_some() || is_spike(&o2, k);
-        clean.y.iter().enumerate().map(|(k, &y)| if set_aside(k) { f64::NAN } else { y }).collect()
+        left_out(&clean.y, set_aside).unwrap_or_else(|| clean.y.clone())
     };
     let mut steps: Vec<(usize, f64, f64, f64)> = Vec::new(); // (k, stat, size, size_sd)
     for &(k, stat) in &candidates {
