@@ -181,13 +181,26 @@ impl TagObs {
         let n = table.len();
         let period = table.period_us.max(1) as f64;
         let uncertain = uncertain_factor.max(1.0);
-        let (mut y, mut base_w) = (Vec::with_capacity(n), Vec::with_capacity(n));
-        let rows = table.raw.iter().zip(&table.status).zip(&table.quality).take(n);
-        for (i, ((&raw, &status), &quality)) in rows.enumerate() {
-            let inserted = status == Status::Filled;
-            y.push(if !inserted && use_row(i) && raw.is_finite() { raw } else { f64::NAN });
-            base_w.push(if !inserted && quality == Quality::Uncertain { uncertain } else { 1.0 });
-        }
+        // (Each array in a pass of its own over zipped slices, written by
+        // `extend` without a capacity check per element.)
+        let m = n.min(table.raw.len()).min(table.status.len()).min(table.quality.len());
+        let (raw, status, quality) = (&table.raw[..m], &table.status[..m], &table.quality[..m]);
+        let mut y = Vec::with_capacity(n);
+        y.extend(raw.iter().zip(status).enumerate().map(|(i, (&raw, &status))| {
+            if status != Status::Filled && raw.is_finite() && use_row(i) {
+                raw
+            } else {
+                f64::NAN
+            }
+        }));
+        let mut base_w = Vec::with_capacity(n);
+        base_w.extend(status.iter().zip(quality).map(|(&status, &quality)| {
+            if status != Status::Filled && quality == Quality::Uncertain {
+                uncertain
+            } else {
+                1.0
+            }
+        }));
         // (One period is the usual step: its quotient, 1, needs no division.)
         let one = table.period_us.max(1);
         let mut dt = Vec::with_capacity(n);
@@ -494,6 +507,31 @@ impl Fitted {
         Ok((sm.mean, sm.sd))
     }
 
+    /// [`Fitted::smooth_signal`] of the observations that
+    /// `TagObs::build(table, uncertain_factor, use_row, _)` followed by
+    /// `set_noise` would give on a regularly sampled table, when this
+    /// thread's last smoother pass with deletion residuals had exactly those
+    /// (checked row by row against the table, without building them):
+    /// the readings per row (NaN where none), the signal and its standard
+    /// deviation, taken from the memo. `None` otherwise (build the
+    /// observations and call [`Fitted::smooth_signal`]).
+    pub fn kept_signal_of_table(
+        &self,
+        table: &TagTable,
+        uncertain_factor: f64,
+        use_row: impl Fn(usize) -> bool,
+    ) -> Option<(Vec<f64>, Vec<f64>, Vec<f64>)> {
+        SIGNAL_MEMO.with(|memo| {
+            let mut memo = memo.borrow_mut();
+            if !(memo.model_is(self, table.len()) && memo.matches_table(table, uncertain_factor, use_row)) {
+                return None;
+            }
+            let found = (std::mem::take(&mut memo.y), std::mem::take(&mut memo.mean), std::mem::take(&mut memo.sd));
+            memo.clear();
+            Some(found)
+        })
+    }
+
     /// Smoothed process value (the signal Z a_t + d, without observation
     /// noise) and its standard deviation at every grid point.
     pub fn smooth(&self, obs: &TagObs, keep_aux: bool) -> Result<Smoothed, ModelError> {
@@ -720,9 +758,9 @@ thread_local! {
 struct SignalMemo {
     spec: String,
     params: Vec<u64>,
-    y: Vec<u64>,
-    w: Vec<u64>,
-    dt: Vec<u64>,
+    y: Vec<f64>,
+    w: Vec<f64>,
+    dt: Vec<f64>,
     mean: Vec<f64>,
     sd: Vec<f64>,
 }
@@ -733,7 +771,8 @@ fn bits(x: &[f64]) -> impl Iterator<Item = u64> + '_ {
 
 impl SignalMemo {
     fn clear(&mut self) {
-        for v in [&mut self.params, &mut self.y, &mut self.w, &mut self.dt] {
+        self.params.clear();
+        for v in [&mut self.y, &mut self.w, &mut self.dt] {
             v.clear();
         }
         self.spec.clear();
@@ -755,24 +794,65 @@ impl SignalMemo {
         }
         self.spec = f.spec.to_string();
         self.params.extend(bits(&f.params));
-        self.y.extend(bits(o.y));
-        self.w.extend(bits(w));
-        self.dt.extend(bits(dt));
+        self.y.extend_from_slice(o.y);
+        self.w.extend_from_slice(w);
+        self.dt.extend_from_slice(dt);
         f.signal_into(sm, n, &mut self.mean, &mut self.sd);
     }
 
     fn matches(&self, f: &Fitted, obs: &TagObs) -> bool {
         // (The long arrays are compared without early exit, which vectorises.)
-        let same = |kept: &[u64], x: &[f64]| {
-            kept.len() == x.len() && kept.iter().zip(x).fold(true, |eq, (&a, b)| eq & (a == b.to_bits()))
+        let same = |kept: &[f64], x: &[f64]| {
+            kept.len() == x.len() && kept.iter().zip(x).fold(true, |eq, (a, b)| eq & (a.to_bits() == b.to_bits()))
         };
+        self.model_is(f, obs.len()) && same(&self.y, &obs.y) && same(&self.w, &obs.w) && same(&self.dt, &obs.dt)
+    }
+
+    /// True when the kept signal has `n` points and came from the model of `f`.
+    fn model_is(&self, f: &Fitted, n: usize) -> bool {
         !self.mean.is_empty()
-            && self.mean.len() == obs.len()
+            && self.mean.len() == n
+            && self.y.len() == n
+            && self.w.len() == n
+            && self.dt.len() == n
             && self.params.iter().copied().eq(bits(&f.params))
-            && same(&self.y, &obs.y)
-            && same(&self.w, &obs.w)
-            && same(&self.dt, &obs.dt)
             && self.spec == f.spec.to_string()
+    }
+
+    /// True when the kept pass's observations are the ones
+    /// [`TagObs::build`] gives for `table` (regularly sampled) with
+    /// `use_row` and `uncertain_factor`, once the noise is set: readings
+    /// (NaN where none), variance multipliers and time steps, compared per
+    /// row as `build_regular` would write them, without building them.
+    fn matches_table(&self, table: &TagTable, uncertain_factor: f64, use_row: impl Fn(usize) -> bool) -> bool {
+        let n = table.len();
+        if table.sampling != Sampling::Regular
+            || table.raw.len() != n
+            || table.status.len() != n
+            || table.quality.len() != n
+            || self.y.len() != n
+        {
+            return false;
+        }
+        let uncertain = uncertain_factor.max(1.0);
+        // Readings: the same value, or both missing.
+        let rows = table.raw.iter().zip(&table.status).zip(&self.y).enumerate();
+        let y_same = rows.fold(true, |eq, (i, ((&raw, &status), &kept))| {
+            let reading = status != Status::Filled && raw.is_finite() && use_row(i);
+            eq & if reading { raw.to_bits() == kept.to_bits() } else { kept.is_nan() }
+        });
+        let w_same = table.status.iter().zip(&table.quality).zip(&self.w).fold(true, |eq, ((&status, &q), &kept)| {
+            let w = if status != Status::Filled && q == Quality::Uncertain { uncertain } else { 1.0 };
+            eq & (w.to_bits() == kept.to_bits())
+        });
+        let one = table.period_us.max(1);
+        let period = one as f64;
+        let steps = table.ts_us.windows(2).zip(&self.dt).fold(true, |eq, (t, &kept)| {
+            let d = t[1] - t[0];
+            let dt = if d == one { 1.0 } else { (d as f64 / period).max(1e-6) };
+            eq & (dt.to_bits() == kept.to_bits())
+        });
+        y_same && w_same && steps && self.dt.last().is_some_and(|&d| d == 1.0)
     }
 }
 
@@ -992,5 +1072,80 @@ mod tests {
             .eq(fresh.mean.iter().map(|x| x.to_bits())));
         assert!(remembered());
         assert!(same(f.smooth_signal(&o).unwrap()) && !remembered());
+    }
+
+    /// The table check takes the memo exactly when building the
+    /// observations would have given the kept pass's: any reading, quality
+    /// or time step that differs, another model, or another tag's table,
+    /// and it is not taken.
+    #[test]
+    fn the_remembered_signal_is_taken_for_its_own_table_only() {
+        let mut rng = crate::rng::Rng::new(6);
+        let mut x = 0.0;
+        let mut v: Vec<f64> = (0..500)
+            .map(|_| {
+                x = 0.97 * x + 0.2 * rng.normal();
+                20.0 + x + 0.1 * rng.normal()
+            })
+            .collect();
+        v[50] = f64::NAN;
+        let mut ts: Vec<i64> = (0..500).map(|i| i * 10).collect();
+        ts.drain(200..205); // a gap: a time step of 6 periods
+        v.drain(200..205);
+        let mut t = table(ts, v, Sampling::Regular);
+        t.quality[77] = Quality::Uncertain;
+        let use_row = |i: usize| i != 9;
+        let spec: ModelSpec = "local-level+arma(1,0)".parse().unwrap();
+        let given = [("sigma2.obs", 0.01), ("sigma2.level", 1e-6), ("phi.1", 0.97), ("sigma2.arma", 0.04)];
+        let f = Fitted::given(&spec, &given.iter().map(|(k, v)| (k.to_string(), *v)).collect()).unwrap();
+        let mut o = TagObs::build(&t, 4.0, use_row, 0);
+        o.set_noise(f.obs_noise());
+        let fresh = f.smooth(&o, false).unwrap();
+        let bits = |x: &[f64]| x.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
+        let keep = || {
+            f.smooth_with_outliers(&o, &o.y).unwrap();
+        };
+
+        // Its own table: the readings, signal and sd of a fresh pass.
+        keep();
+        let (y, mean, sd) = f.kept_signal_of_table(&t, 4.0, use_row).expect("taken");
+        assert_eq!(bits(&y), bits(&o.y));
+        assert_eq!((bits(&mean), bits(&sd)), (bits(&fresh.mean), bits(&fresh.sd)));
+        assert!(f.kept_signal_of_table(&t, 4.0, use_row).is_none(), "spent");
+
+        // Each difference alone: not taken (and the memo stays for a match).
+        let mut changed: Vec<(&str, TagTable)> = Vec::new();
+        let mut c = t.clone();
+        c.raw[300] += 1e-12;
+        changed.push(("a reading", c));
+        let mut c = t.clone();
+        c.quality[78] = Quality::Uncertain;
+        changed.push(("a quality", c));
+        let mut c = t.clone();
+        c.ts_us[400] -= 1;
+        changed.push(("a time", c));
+        let mut c = t.clone();
+        c.status[120] = Status::Filled;
+        changed.push(("an inserted row", c));
+        let mut c = t.clone();
+        c.raw.pop();
+        c.ts_us.pop();
+        c.status.pop();
+        c.quality.pop();
+        changed.push(("one row fewer", c));
+        let mut c = t.clone();
+        c.sampling = Sampling::Exception { deadband: 0.1 };
+        changed.push(("exception-reported", c));
+        for (what, c) in &changed {
+            keep();
+            assert!(f.kept_signal_of_table(c, 4.0, use_row).is_none(), "{what}");
+        }
+        keep();
+        assert!(f.kept_signal_of_table(&t, 2.0, use_row).is_none(), "another uncertain factor");
+        assert!(f.kept_signal_of_table(&t, 4.0, |i| i != 10).is_none(), "another row left out");
+        let mut g = f.clone();
+        g.params[2] = 0.96;
+        assert!(g.kept_signal_of_table(&t, 4.0, use_row).is_none(), "another model");
+        assert!(f.kept_signal_of_table(&t, 4.0, use_row).is_some(), "kept through the misses");
     }
 }

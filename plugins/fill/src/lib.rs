@@ -131,9 +131,25 @@ impl FillStep {
                     _ => false,
                 }
         };
+        // The usual tag, regularly sampled with no noisy reading, after the
+        // fault tests left its readings as their last smoother pass had
+        // them: that pass's signal is taken as it is (checked row by row
+        // against what the observations would be, without building them).
+        let noisy = table.fault.contains(&Some(Fault::Noise));
+        let kept = match Fitted::from_report(&work.report) {
+            Some(f) if !noisy && table.sampling == Sampling::Regular => {
+                f.kept_signal_of_table(table, work.settings.uncertain_factor, usable)
+            }
+            _ => None,
+        };
+        if let Some((y, mean, sd)) = kept {
+            let mut obs = TagObs::default();
+            obs.y = y;
+            return self.write_estimates(work, &inserts, &obs, &mean, &sd);
+        }
         let mut obs = TagObs::build(table, work.settings.uncertain_factor, usable, self.max_quiet_us);
         // (Most tags have no noisy reading: one scan of the faults first.)
-        if table.fault.contains(&Some(Fault::Noise)) {
+        if noisy {
             for k in 0..obs.len() {
                 if let Some(i) = obs.row(k) {
                     if table.fault[i] == Some(Fault::Noise) && table.stat[i].is_finite() {
@@ -162,6 +178,23 @@ impl FillStep {
         };
         obs.set_noise(fitted.obs_noise());
         let (mean, sd) = fitted.smooth_signal(&obs).map_err(|e| e.to_string())?;
+        self.write_estimates(work, &inserts, &obs, &mean, &sd)
+    }
+
+    /// Writes the smoothed `mean` and `sd` (per grid point of `obs`) into
+    /// the rows: `std` everywhere, the value where a row was inserted or
+    /// rejected; then the step's report.
+    fn write_estimates(
+        &self,
+        work: &mut TagWork,
+        inserts: &[i64],
+        obs: &TagObs,
+        mean: &[f64],
+        sd: &[f64],
+    ) -> Result<(), String> {
+        let table = &work.table;
+        let n = table.len();
+        let period = table.period_us.max(1);
         let report = |work: &mut TagWork, filled: usize, replaced: usize, null_rows: usize| {
             work.report.extra.insert(
                 "fill".into(),
@@ -177,14 +210,14 @@ impl FillStep {
         let grid = obs.rows_are_grid() && obs.len() == n && sd.len() == n && table.std.len() == n;
         if grid && !table.status.iter().any(open) {
             // Nothing to fill.
-            work.table.std.copy_from_slice(&sd);
+            work.table.std.copy_from_slice(sd);
             report(work, 0, 0, 0);
             return Ok(());
         }
 
         // 3. The runs of rows without an observation (gaps and rejected
         // runs): (first row, end, length of the hole in time).
-        let observed_rows = if grid { Vec::new() } else { observed_row(&obs, n) };
+        let observed_rows = if grid { Vec::new() } else { observed_row(obs, n) };
         let is_observed = |i: usize| if grid { obs.y[i].is_finite() } else { observed_rows[i] };
         let mut holes: Vec<(usize, usize, i64)> = Vec::new();
         let mut i = 0;
@@ -241,7 +274,7 @@ impl FillStep {
         };
         if grid {
             // Every row's `std` at once; then only the rows inserted or rejected.
-            t.std.copy_from_slice(&sd);
+            t.std.copy_from_slice(sd);
             for i in 0..n {
                 if open(&t.status[i]) {
                     visit(t, i, i);
