@@ -1,12 +1,15 @@
 //! Criterion benches of the state-space core: one local level series through
 //! every filter path (scalar, fixed-size, dynamic), ARMA(2,1) on the
-//! fixed-size and dynamic paths, and maximum-likelihood fits. The
+//! fixed-size and dynamic paths, the survey's change test, and
+//! maximum-likelihood fits. The
 //! side-by-side comparison with statsmodels is `vs_statsmodels.sh`.
 
 #![allow(clippy::unwrap_used)] // a bench aborts on a broken fixture; that is the point
 use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion, Throughput};
 use std::hint::black_box;
+use tagwright::plugin::survey;
 use tagwright::rng::Rng;
+use tagwright::series::{Quality, ReadCounts, TagSeries};
 use tagwright::ssm::{
     arma, filter, filter_into, fit, smooth, smooth_into, FilterOptions, FilterOutput, FitOptions, ModelSpec,
     Observations, Path, SmootherOutput,
@@ -96,6 +99,26 @@ fn two_state_loops(c: &mut Criterion) {
     g.finish();
 }
 
+/// The plant-wide survey's change test on one tag of a shift at 1 s (the
+/// engine runs it on every regular tag before the steps).
+fn survey_one_tag(c: &mut Criterion) {
+    let n = 43_200;
+    let mut rng = Rng::new(6);
+    let (ar, _) = arma::simulate(&[0.995], &[], 0.01, n, &mut rng).unwrap();
+    let s = TagSeries {
+        tag: "FT-1".into(),
+        ts_us: (0..n as i64).map(|i| i * 1_000_000).collect(),
+        values: ar.iter().map(|x| 5.0 + x + 0.05 * rng.normal()).collect(),
+        quality: vec![Quality::Good; n],
+        counts: ReadCounts::default(),
+    };
+    let mut g = c.benchmark_group("survey_43k");
+    g.throughput(Throughput::Elements(n as u64));
+    g.sample_size(30);
+    g.bench_function("change_times", |b| b.iter(|| black_box(survey::change_times(&s, 1_000_000))));
+    g.finish();
+}
+
 fn fits(c: &mut Criterion) {
     let y = local_level_series(10_000, 3);
     let obs = Observations::univariate(&y);
@@ -115,5 +138,5 @@ fn fits(c: &mut Criterion) {
     g.finish();
 }
 
-criterion_group!(benches, filter_smooth, two_state_loops, fits);
+criterion_group!(benches, filter_smooth, two_state_loops, survey_one_tag, fits);
 criterion_main!(benches);

@@ -318,6 +318,26 @@ impl StepSystem {
     }
 }
 
+const SIGN_BIT: u64 = 1 << 63;
+const INFINITY_BITS: u64 = 0x7ff0_0000_0000_0000;
+
+/// True when `bad` holds for the bits of any value of `x`. Blocks of 8 are
+/// tested whole with integer compares, which vectorise (a fold of float
+/// tests over the whole slice did not).
+#[inline]
+fn any_of_bits(x: &[f64], bad: impl Fn(u64) -> bool) -> bool {
+    let mut blocks = x.chunks_exact(8);
+    let mut found = false;
+    for b in &mut blocks {
+        let mut any = 0u8;
+        for v in b {
+            any |= u8::from(bad(v.to_bits()));
+        }
+        found |= any != 0;
+    }
+    found || blocks.remainder().iter().any(|v| bad(v.to_bits()))
+}
+
 /// The data a filter runs on. `y` holds n rows of p elements (row-major);
 /// NaN marks a missing element.
 #[derive(Debug, Clone, Copy)]
@@ -356,7 +376,7 @@ impl<'a> Observations<'a> {
         // (Each check first runs over the whole array without stopping,
         // which vectorises; the search for the index runs only on a failure.)
         let infinite = |v: &f64| v.abs() == f64::INFINITY;
-        if self.y.iter().fold(false, |bad, v| bad | infinite(v)) {
+        if any_of_bits(self.y, |b| b & !SIGN_BIT == INFINITY_BITS) {
             if let Some((index, &value)) = self.y.iter().enumerate().find(|(_, v)| infinite(v)) {
                 return Err(SsmError::NonFiniteObservation { index, value });
             }
@@ -365,7 +385,9 @@ impl<'a> Observations<'a> {
             assert_eq!(dt.len(), self.len(), "dt must have one entry per time point");
             let last = dt.len().saturating_sub(1);
             let bad_step = |v: &f64| !(v.is_finite() && *v > 0.0);
-            if dt[..last].iter().fold(false, |bad, v| bad | bad_step(v)) {
+            // (A positive finite double's bits, as an integer, lie in 1 ..
+            // the bits of infinity; zero, negatives and NaN lie outside.)
+            if any_of_bits(&dt[..last], |b| b.wrapping_sub(1) >= INFINITY_BITS - 1) {
                 if let Some((index, &value)) = dt[..last].iter().enumerate().find(|(_, v)| bad_step(v)) {
                     return Err(SsmError::BadTimeStep { index, value });
                 }
@@ -392,6 +414,48 @@ impl<'a> Observations<'a> {
         match self.h_scale {
             Some(w) => w[t * self.p + i],
             None => 1.0,
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_bit_tests_of_validate_agree_with_the_float_tests() {
+        let special = [
+            0.0,
+            -0.0,
+            1.0,
+            -1.0,
+            f64::MIN_POSITIVE,
+            f64::MIN_POSITIVE / 4.0, // subnormal
+            -f64::MIN_POSITIVE / 4.0,
+            f64::MAX,
+            f64::MIN,
+            f64::INFINITY,
+            f64::NEG_INFINITY,
+            f64::NAN,
+            -f64::NAN,
+        ];
+        for &v in &special {
+            // Alone, and inside a block of 8 (the vectorised path).
+            for len in [1, 8, 19] {
+                for at in [0, len - 1] {
+                    let mut x = vec![2.5; len];
+                    x[at] = v;
+                    let y = Observations::univariate(&x);
+                    let want_y = v.is_infinite();
+                    assert_eq!(y.validate().is_err(), want_y, "y = {v} at {at} of {len}");
+                    let mut with_next = x.clone();
+                    with_next.push(1.0); // (the last step is never taken)
+                    let ones = vec![1.0; len + 1];
+                    let o = Observations { y: &ones, dt: Some(&with_next), ..Observations::univariate(&ones) };
+                    let want_dt = !(v.is_finite() && v > 0.0);
+                    assert_eq!(o.validate().is_err(), want_dt, "dt = {v} at {at} of {len}");
+                }
+            }
         }
     }
 }
