@@ -509,7 +509,9 @@ impl Fitted {
 
     /// [`Fitted::smooth_signal`] of the observations that
     /// `TagObs::build(table, uncertain_factor, use_row, _)` followed by
-    /// `set_noise` would give on a regularly sampled table, when this
+    /// `set_noise` would give on a regularly sampled table, where
+    /// `use_row(i)` is "row i has status `ok`" (a step that also uses other
+    /// rows, noisy ones say, cannot take it), when this
     /// thread's last smoother pass with deletion residuals had exactly those
     /// (checked row by row against the table, without building them):
     /// the readings per row (NaN where none), the signal and its standard
@@ -519,11 +521,10 @@ impl Fitted {
         &self,
         table: &TagTable,
         uncertain_factor: f64,
-        use_row: impl Fn(usize) -> bool,
     ) -> Option<(Vec<f64>, Vec<f64>, Vec<f64>)> {
         SIGNAL_MEMO.with(|memo| {
             let mut memo = memo.borrow_mut();
-            if !(memo.model_is(self, table.len()) && memo.matches_table(table, uncertain_factor, use_row)) {
+            if !(memo.model_is(self, table.len()) && memo.matches_table(table, uncertain_factor)) {
                 return None;
             }
             let found = (std::mem::take(&mut memo.y), std::mem::take(&mut memo.mean), std::mem::take(&mut memo.sd));
@@ -820,39 +821,42 @@ impl SignalMemo {
     }
 
     /// True when the kept pass's observations are the ones
-    /// [`TagObs::build`] gives for `table` (regularly sampled) with
-    /// `use_row` and `uncertain_factor`, once the noise is set: readings
-    /// (NaN where none), variance multipliers and time steps, compared per
-    /// row as `build_regular` would write them, without building them.
-    fn matches_table(&self, table: &TagTable, uncertain_factor: f64, use_row: impl Fn(usize) -> bool) -> bool {
+    /// [`TagObs::build`] gives for `table` (regularly sampled), once the
+    /// noise is set, when the readings are the rows of status `ok` with a
+    /// finite raw value: readings (NaN where none), variance multipliers
+    /// and time steps, compared per row as `build_regular` would write
+    /// them, without building them. (Each comparison runs over zipped
+    /// slices without branches or early exit, which vectorises.)
+    fn matches_table(&self, table: &TagTable, uncertain_factor: f64) -> bool {
         let n = table.len();
         if table.sampling != Sampling::Regular
             || table.raw.len() != n
             || table.status.len() != n
             || table.quality.len() != n
             || self.y.len() != n
+            || self.w.len() != n
         {
             return false;
         }
-        let uncertain = uncertain_factor.max(1.0);
-        // Readings: the same value, or both missing.
-        let rows = table.raw.iter().zip(&table.status).zip(&self.y).enumerate();
-        let y_same = rows.fold(true, |eq, (i, ((&raw, &status), &kept))| {
-            let reading = status != Status::Filled && raw.is_finite() && use_row(i);
-            eq & if reading { raw.to_bits() == kept.to_bits() } else { kept.is_nan() }
+        let uncertain = uncertain_factor.max(1.0).to_bits();
+        let one = 1.0f64.to_bits();
+        let rows = table.raw.iter().zip(&table.status).zip(&table.quality).zip(self.y.iter().zip(&self.w));
+        let same = rows.fold(true, |eq, (((&raw, &status), &quality), (&y, &w))| {
+            // Readings: the same value, or both missing.
+            let ok = status == Status::Ok;
+            let reading = ok & raw.is_finite();
+            let y_same = (reading & (raw.to_bits() == y.to_bits())) | (!reading & y.is_nan());
+            let w_want = if (status != Status::Filled) & (quality == Quality::Uncertain) { uncertain } else { one };
+            eq & y_same & (w_want == w.to_bits())
         });
-        let w_same = table.status.iter().zip(&table.quality).zip(&self.w).fold(true, |eq, ((&status, &q), &kept)| {
-            let w = if status != Status::Filled && q == Quality::Uncertain { uncertain } else { 1.0 };
-            eq & (w.to_bits() == kept.to_bits())
-        });
-        let one = table.period_us.max(1);
-        let period = one as f64;
+        let step = table.period_us.max(1);
+        let period = step as f64;
         let steps = table.ts_us.windows(2).zip(&self.dt).fold(true, |eq, (t, &kept)| {
             let d = t[1] - t[0];
-            let dt = if d == one { 1.0 } else { (d as f64 / period).max(1e-6) };
+            let dt = if d == step { 1.0 } else { (d as f64 / period).max(1e-6) };
             eq & (dt.to_bits() == kept.to_bits())
         });
-        y_same && w_same && steps && self.dt.last().is_some_and(|&d| d == 1.0)
+        same && steps && self.dt.last().is_some_and(|&d| d == 1.0)
     }
 }
 
@@ -1094,11 +1098,18 @@ mod tests {
         v.drain(200..205);
         let mut t = table(ts, v, Sampling::Regular);
         t.quality[77] = Quality::Uncertain;
-        let use_row = |i: usize| i != 9;
+        // A rejected reading (not used), uncertain too (its weight still counts).
+        t.status[9] = Status::Rejected;
+        t.quality[9] = Quality::Uncertain;
+        let ok = |t: &TagTable| {
+            let status = t.status.clone();
+            move |i: usize| status[i] == Status::Ok
+        };
+        let use_row = ok(&t);
         let spec: ModelSpec = "local-level+arma(1,0)".parse().unwrap();
         let given = [("sigma2.obs", 0.01), ("sigma2.level", 1e-6), ("phi.1", 0.97), ("sigma2.arma", 0.04)];
         let f = Fitted::given(&spec, &given.iter().map(|(k, v)| (k.to_string(), *v)).collect()).unwrap();
-        let mut o = TagObs::build(&t, 4.0, use_row, 0);
+        let mut o = TagObs::build(&t, 4.0, &use_row, 0);
         o.set_noise(f.obs_noise());
         let fresh = f.smooth(&o, false).unwrap();
         let bits = |x: &[f64]| x.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
@@ -1108,10 +1119,10 @@ mod tests {
 
         // Its own table: the readings, signal and sd of a fresh pass.
         keep();
-        let (y, mean, sd) = f.kept_signal_of_table(&t, 4.0, use_row).expect("taken");
+        let (y, mean, sd) = f.kept_signal_of_table(&t, 4.0).expect("taken");
         assert_eq!(bits(&y), bits(&o.y));
         assert_eq!((bits(&mean), bits(&sd)), (bits(&fresh.mean), bits(&fresh.sd)));
-        assert!(f.kept_signal_of_table(&t, 4.0, use_row).is_none(), "spent");
+        assert!(f.kept_signal_of_table(&t, 4.0).is_none(), "spent");
 
         // Each difference alone: not taken (and the memo stays for a match).
         let mut changed: Vec<(&str, TagTable)> = Vec::new();
@@ -1128,6 +1139,12 @@ mod tests {
         c.status[120] = Status::Filled;
         changed.push(("an inserted row", c));
         let mut c = t.clone();
+        c.status[130] = Status::Rejected;
+        changed.push(("another row left out", c));
+        let mut c = t.clone();
+        c.quality[9] = Quality::Good;
+        changed.push(("the quality of a row left out", c));
+        let mut c = t.clone();
         c.raw.pop();
         c.ts_us.pop();
         c.status.pop();
@@ -1138,14 +1155,13 @@ mod tests {
         changed.push(("exception-reported", c));
         for (what, c) in &changed {
             keep();
-            assert!(f.kept_signal_of_table(c, 4.0, use_row).is_none(), "{what}");
+            assert!(f.kept_signal_of_table(c, 4.0).is_none(), "{what}");
         }
         keep();
-        assert!(f.kept_signal_of_table(&t, 2.0, use_row).is_none(), "another uncertain factor");
-        assert!(f.kept_signal_of_table(&t, 4.0, |i| i != 10).is_none(), "another row left out");
+        assert!(f.kept_signal_of_table(&t, 2.0).is_none(), "another uncertain factor");
         let mut g = f.clone();
         g.params[2] = 0.96;
-        assert!(g.kept_signal_of_table(&t, 4.0, use_row).is_none(), "another model");
-        assert!(f.kept_signal_of_table(&t, 4.0, use_row).is_some(), "kept through the misses");
+        assert!(g.kept_signal_of_table(&t, 4.0).is_none(), "another model");
+        assert!(f.kept_signal_of_table(&t, 4.0).is_some(), "kept through the misses");
     }
 }

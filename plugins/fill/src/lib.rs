@@ -137,8 +137,9 @@ impl FillStep {
         // against what the observations would be, without building them).
         let noisy = table.fault.contains(&Some(Fault::Noise));
         let kept = match Fitted::from_report(&work.report) {
+            // (Without noisy readings, the rows used are those of status ok.)
             Some(f) if !noisy && table.sampling == Sampling::Regular => {
-                f.kept_signal_of_table(table, work.settings.uncertain_factor, usable)
+                f.kept_signal_of_table(table, work.settings.uncertain_factor)
             }
             _ => None,
         };
