@@ -255,7 +255,12 @@ pub fn find(
     // The second pass changes nothing when it would leave out exactly the
     // readings the first one did.
     let (y2, y1) = (second.as_deref().unwrap_or(&clean.y), first.as_deref().unwrap_or(&clean.y));
-    let same = y2.iter().zip(y1).all(|(a, b)| a.is_nan() == b.is_nan());
+    // (Both leaving nothing out, the usual case, need no comparison; else
+    // it runs over the whole arrays without stopping, which vectorises.)
+    let same = match (&second, &first) {
+        (None, None) => true,
+        _ => y2.len() == y1.len() && y2.iter().zip(y1).fold(true, |eq, (a, b)| eq & (a.is_nan() == b.is_nan())),
+    };
     drop(first);
     let (o2, sm) = if same { (o1, sm1) } else { spike_pass(&second)? };
     drop(second);
@@ -435,9 +440,27 @@ fn stuck_runs(obs: &TagObs, table: &TagTable, cfg: &Config, f_min: f64) -> Vec<D
     // numbers does not depend on the order they are taken in.)
     let positive = |d: f64| if d > 0.0 { d } else { f64::INFINITY };
     let mut lanes = [f64::INFINITY; 4];
-    for (i, w) in rows.windows(2).enumerate() {
-        let l = &mut lanes[i % 4];
-        *l = l.min(positive((table.raw[w[1]] - table.raw[w[0]]).abs()));
+    if rows.len() == table.raw.len() {
+        // Every row is a reading (rows[i] is i): consecutive readings are
+        // consecutive cells, read without the row map.
+        // (Four pairs at a time, one to a lane, which vectorises.)
+        let raw = &table.raw[..];
+        let (next, prev) = (raw.get(1..).unwrap_or(&[]), raw);
+        let mut blocks = next.chunks_exact(4).zip(prev.chunks_exact(4));
+        for (b, a) in &mut blocks {
+            for j in 0..4 {
+                lanes[j] = lanes[j].min(positive((b[j] - a[j]).abs()));
+            }
+        }
+        let done = next.len() / 4 * 4;
+        for (b, a) in next[done..].iter().zip(&prev[done..]) {
+            lanes[0] = lanes[0].min(positive((b - a).abs()));
+        }
+    } else {
+        for (i, w) in rows.windows(2).enumerate() {
+            let l = &mut lanes[i % 4];
+            *l = l.min(positive((table.raw[w[1]] - table.raw[w[0]]).abs()));
+        }
     }
     let q = lanes.into_iter().fold(f64::INFINITY, f64::min);
     if !q.is_finite() || f_min.is_nan() || f_min <= 0.0 {
