@@ -511,10 +511,10 @@ impl Fitted {
     /// `TagObs::build(table, uncertain_factor, use_row, _)` followed by
     /// `set_noise` would give on a regularly sampled table, where
     /// `use_row(i)` is "row i has status `ok`" (a step that also uses other
-    /// rows, noisy ones say, cannot take it), when this
-    /// thread's last smoother pass with deletion residuals had exactly those
-    /// (checked row by row against the table, without building them):
-    /// the readings per row (NaN where none), the signal and its standard
+    /// rows, noisy ones say, cannot take it), when this thread's last
+    /// smoother pass with deletion residuals had exactly those observations
+    /// (checked row by row against the table, without building them): the
+    /// readings per row (NaN where none), the signal and its standard
     /// deviation, taken from the memo. `None` otherwise (build the
     /// observations and call [`Fitted::smooth_signal`]).
     pub fn kept_signal_of_table(
