@@ -14,6 +14,11 @@
 # (targets: >= 0.25 with fitting, >= 0.5 with parameters given).
 # Each repetition runs the bare copy and then every case; the fastest of
 # REPS repetitions of each is reported (the machines are shared and noisy).
+# Every timed command writes to a fresh place, as a scheduled run writes a
+# directory per shift: the previous repetition's output is deleted before
+# the clock starts (deleting a gigabyte is a discard of its blocks on file
+# systems mounted with `discard`, up to half a second here, and belongs to
+# neither the copy nor the chain).
 # Usage: [CASES='fit 2,given 2,carried 2'] [REPS=3] bash core/benches/chain_vs_bare.sh [HOURS] [TAGS...]
 #   (defaults: fit, given and carried on 1 and 2 threads; 3 repetitions; 12 h; 2,000 tags)
 # Files go to $BENCH_DIR (default: a temporary directory, removed at the end).
@@ -84,6 +89,7 @@ for tags in "${tag_counts[@]}"; do
     bare=""
     best=()
     for ((rep = 0; rep < reps; rep++)); do
+        rm -f "$dir/copy.parquet"
         s=$(seconds "$bin/examples/bare_copy" "$file" "$dir/copy.parquet" zstd --reps 1 --only bare)
         bare=$(awk -v a="$s" -v b="$bare" 'BEGIN { print (b == "" || a < b) ? a : b }')
         for i in "${!cases[@]}"; do
@@ -95,6 +101,7 @@ for tags in "${tag_counts[@]}"; do
                 extra=(--state "$dir/state")
                 yaml=fit
             fi
+            rm -rf "$dir/run"
             s=$(seconds "$bin/tagwright" run --pipeline "$dir/$yaml.yaml" --input "$file" --out "$dir/run" --threads "$threads" "${extra[@]}")
             best[i]=$(awk -v a="$s" -v b="${best[$i]:-}" 'BEGIN { print (b == "" || a < b) ? a : b }')
         done
@@ -104,6 +111,6 @@ for tags in "${tag_counts[@]}"; do
         ratio=$(awk -v a="${best[$i]}" -v b="$bare" 'BEGIN { printf "%.2f", b / a }')
         printf '%-6s %-10s %-8s %-22s %-8s %-8s\n' "$tags" "$rows" "$bare" "$kind params, $threads thr" "${best[$i]}" "$ratio"
     done
-    rm -f "$file" "$dir/copy.parquet"
+    rm -rf "$file" "$dir/copy.parquet" "$dir/run"
 done
 echo "speed_ratio = bare read+write seconds / engine seconds, fastest of $reps each (targets: >= 0.25 fitted, >= 0.5 given)."

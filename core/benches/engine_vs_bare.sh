@@ -57,10 +57,15 @@ for tags in "${tag_counts[@]}"; do
     rows=$((tags * hours * 3600))
     bare_s="" eng_s="" one_s="" bare_kb="" eng_kb="" one_kb=""
     for _ in $(seq "$reps"); do
+        # (Each timed command writes to a fresh place: deleting the last
+        # repetition's output is not part of either side.)
+        rm -f "$dir/copy.parquet"
         read -r kb s < <(measure "$bin/examples/bare_copy" "$file" "$dir/copy.parquet" zstd --reps 1 --only bare)
         bare_s=$(min "$s" "$bare_s"); bare_kb=$(max "$kb" "$bare_kb")
+        rm -rf "$dir/run_$tags"
         read -r kb s < <(measure "$bin/tagwright" run --pipeline "$dir/bench.yaml" --input "$file" --out "$dir/run_$tags")
         eng_s=$(min "$s" "$eng_s"); eng_kb=$(max "$kb" "$eng_kb")
+        rm -rf "$dir/run_$tags"
         read -r kb s < <(measure "$bin/tagwright" run --pipeline "$dir/bench.yaml" --input "$file" --out "$dir/run_$tags" --threads 1)
         one_s=$(min "$s" "$one_s"); one_kb=$(max "$kb" "$one_kb")
     done
