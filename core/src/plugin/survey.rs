@@ -156,42 +156,36 @@ pub fn change_times(s: &TagSeries, period_us: i64) -> Vec<i64> {
     if n < 4 * k {
         return Vec::new();
     }
-    // (The running sum is carried in a register: pushing `last + v` reloaded it.)
-    let mut prefix = Vec::with_capacity(n + 1);
-    prefix.push(0.0);
-    let mut sum = 0.0;
-    prefix.extend(y.iter().map(|&v| {
-        sum += v;
-        sum
-    }));
     let span = 2 * k as i64 * period_us.max(1);
     // d_t = k (mean of the k readings from t on - mean of the k before t):
     // the test's statistic times k, so its bound is k times the module
     // header's too (the same test, without a division per reading), where
-    // those 2k readings span at most 2k periods (NaN elsewhere). Written
-    // over zipped slices (prefix[t + k], prefix[t], prefix[t - k],
-    // ts[t + k - 1], ts[t - k] for t = k..=n-k) without branches, so the
-    // loop vectorises.
+    // those 2k readings span at most 2k periods (NaN elsewhere). From the
+    // running sums P_p = y_0 + .. + y_(p-1): d_t = (P_(t+k) - P_t) - (P_t -
+    // P_(t-k)). One pass takes the running sum on and, as soon as P_p is
+    // known, writes d at t = p - k and |d| (compacted where d is defined);
+    // the last 2k + 1 sums wait in a ring, so no array of sums is stored
+    // and read back. (The sums are taken in the same order as one prefix
+    // array would be, so d is the same to the bit.)
+    const RING: usize = 16;
+    const _: () = assert!(RING > 2 * SURVEY_K);
+    let mut ring = [0.0f64; RING];
     let mut d = vec![f64::NAN; n];
-    let m = n + 1 - 2 * k;
-    let lanes = d[k..k + m]
-        .iter_mut()
-        .zip(&prefix[2 * k..2 * k + m])
-        .zip(&prefix[k..k + m])
-        .zip(&prefix[..m])
-        .zip(ts[2 * k - 1..2 * k - 1 + m].iter().zip(&ts[..m]));
-    for ((((dt, &pa), &pt), &pb), (&ta, &tb)) in lanes {
-        // (k times the difference of means: the division by k is left to
-        // the one comparison that needs it, below.)
-        let step = (pa - pt) - (pt - pb);
-        *dt = if ta - tb <= span { step } else { f64::NAN };
-    }
-    // |d| where d is defined, compacted as the readings were above.
     let mut abs = vec![0.0; n];
     let mut j = 0;
-    for &v in &d {
-        abs[j] = v.abs();
-        j += usize::from(v.is_finite());
+    let mut sum = 0.0;
+    for (i, &v) in y.iter().enumerate() {
+        sum += v;
+        let p = i + 1;
+        ring[p % RING] = sum;
+        if p >= 2 * k {
+            let (pt, pb) = (ring[(p - k) % RING], ring[(p - 2 * k) % RING]);
+            let step = (sum - pt) - (pt - pb);
+            let dt = if ts[i] - ts[p - 2 * k] <= span { step } else { f64::NAN };
+            d[p - k] = dt;
+            abs[j] = dt.abs();
+            j += usize::from(dt.is_finite());
+        }
     }
     abs.truncate(j);
     if abs.len() < 2 * k {
@@ -206,8 +200,16 @@ pub fn change_times(s: &TagSeries, period_us: i64) -> Vec<i64> {
     }
     let bound = SURVEY_Z * scale;
     let mut out = Vec::new();
+    // (Most stretches of 8 hold nothing above the bound: each is tested
+    // whole without a branch per value and skipped. NaN is never above.)
+    const BLOCK: usize = 8;
+    let quiet = |b: &[f64]| !b.iter().fold(false, |any, x| any | (x.abs() > bound));
     let mut t = 0;
     while t < n {
+        if t % BLOCK == 0 && t + BLOCK <= n && quiet(&d[t..t + BLOCK]) {
+            t += BLOCK;
+            continue;
+        }
         if d[t].is_finite() && d[t].abs() > bound {
             let mut best = t;
             while t < n && d[t].is_finite() && d[t].abs() > bound {
@@ -320,6 +322,81 @@ mod tests {
         let mut rng = Rng::new(10);
         let quiet: Vec<f64> = (0..2000).map(|_| 5.0 + 0.1 * rng.normal()).collect();
         assert!(change_times(&series("FT-2", quiet), 5_000_000).is_empty());
+    }
+
+    /// The change test written the plain way (each mean summed afresh,
+    /// the median by sorting, every value visited), for comparison.
+    fn change_times_plain(ts: &[i64], y: &[f64], period_us: i64) -> Vec<i64> {
+        let (k, n) = (SURVEY_K, y.len());
+        let span = 2 * k as i64 * period_us;
+        let mut d = vec![f64::NAN; n];
+        for t in k..=n - k {
+            if ts[t + k - 1] - ts[t - k] <= span {
+                d[t] = y[t..t + k].iter().sum::<f64>() - y[t - k..t].iter().sum::<f64>();
+            }
+        }
+        let mut abs: Vec<f64> = d.iter().filter(|v| v.is_finite()).map(|v| v.abs()).collect();
+        abs.sort_by(f64::total_cmp);
+        let bound = SURVEY_Z * 1.4826 * abs[abs.len() / 2];
+        let mut out = Vec::new();
+        let mut t = 0;
+        while t < n {
+            if !(d[t].abs() > bound) {
+                t += 1;
+                continue;
+            }
+            let mut best = t;
+            while t < n && d[t].abs() > bound {
+                if d[t].abs() > d[best].abs() {
+                    best = t;
+                }
+                t += 1;
+            }
+            if best >= k && best + k <= n {
+                let dm = median6(&y[best..best + k]) - median6(&y[best - k..best]);
+                if dm.abs() * k as f64 > bound {
+                    out.push(ts[best]);
+                }
+            }
+        }
+        out
+    }
+
+    #[test]
+    fn change_times_agree_with_the_plain_test() {
+        // Wandering tags with steps of several sizes (some near the bound),
+        // spikes, and gaps that windows must not straddle.
+        for seed in 1..=20 {
+            let mut rng = Rng::new(100 + seed);
+            let n = 20_000;
+            let mut x = 0.0;
+            let mut ts = Vec::with_capacity(n);
+            let mut t = 0i64;
+            let mut level = 10.0;
+            let sign = if seed % 2 == 0 { 1.0 } else { -1.0 };
+            let v: Vec<f64> = (0..n)
+                .map(|i| {
+                    x = 0.995 * x + 0.02 * rng.normal();
+                    t += if i % 3_001 == 0 { 40_000_000 } else { 1_000_000 };
+                    ts.push(t);
+                    if i > 0 && i % 2_500 == 0 {
+                        level += sign * [0.1, 0.3, 0.8][(i / 2_500) % 3];
+                    }
+                    let spike = if i % 997 == 0 { 1.0 } else { 0.0 };
+                    level + x + spike + 0.01 * rng.normal()
+                })
+                .collect();
+            let s = TagSeries {
+                tag: "FT-9".into(),
+                ts_us: ts.clone(),
+                values: v.clone(),
+                quality: vec![Quality::Good; n],
+                counts: ReadCounts::default(),
+            };
+            let found = change_times(&s, 1_000_000);
+            assert_eq!(found, change_times_plain(&ts, &v, 1_000_000), "seed {seed}");
+            assert!(!found.is_empty(), "seed {seed}: the steps are found");
+        }
     }
 
     #[test]
