@@ -84,6 +84,9 @@ for tags in "${tag_counts[@]}"; do
             --state "$dir/earlier_state" > "$dir/cmd.out" 2>&1 || { cat "$dir/cmd.out" >&2; exit 1; }
         rm -rf "$dir/earlier.parquet" "$dir/earlier_run"
     fi
+    # The generated file goes to disk before any timing: its writeback would
+    # otherwise run during the first repetitions (seen: 0.1-0.4 s on a run).
+    sync
     # Each repetition times the bare copy and then every case, so all of
     # them see the same machine; the fastest of each is reported.
     bare=""

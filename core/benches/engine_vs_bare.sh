@@ -54,6 +54,7 @@ printf '%-6s %-10s %-8s %-10s %-7s %-10s %-7s %-8s %-9s %-9s\n' tags rows bare_s
 for tags in "${tag_counts[@]}"; do
     file="$dir/long_${tags}.parquet"
     "$bin/examples/gen_long" "$tags" "$hours" "$file" > /dev/null
+    sync # (the generated file goes to disk before any timing)
     rows=$((tags * hours * 3600))
     bare_s="" eng_s="" one_s="" bare_kb="" eng_kb="" one_kb=""
     for _ in $(seq "$reps"); do
