@@ -1014,29 +1014,41 @@ mod tests {
         assert!(s.sd.iter().all(|&x| x > 0.0 && x < 0.3));
     }
 
+    /// `n` readings at 10 µs of `level` plus an AR(1) wander with
+    /// coefficient `phi` (innovation sd 0.2) and reading noise sd 0.1.
+    fn wandering(seed: u64, n: usize, phi: f64, level: f64) -> (Vec<i64>, Vec<f64>) {
+        let mut rng = crate::rng::Rng::new(seed);
+        let mut x = 0.0;
+        let v = (0..n)
+            .map(|_| {
+                x = phi * x + 0.2 * rng.normal();
+                level + x + 0.1 * rng.normal()
+            })
+            .collect();
+        ((0..n as i64).map(|i| i * 10).collect(), v)
+    }
+
+    /// A local level plus AR(1) with the given coefficient, its other
+    /// parameters fixed.
+    fn level_ar1(phi: f64) -> Fitted {
+        let spec: ModelSpec = "local-level+arma(1,0)".parse().unwrap();
+        let given = [("sigma2.obs", 0.01), ("sigma2.level", 1e-6), ("phi.1", phi), ("sigma2.arma", 0.04)];
+        Fitted::given(&spec, &given.iter().map(|(k, v)| (k.to_string(), *v)).collect()).unwrap()
+    }
+
     /// The signal a later step takes from the fault tests' smoother pass is
     /// bit for bit the one it would compute; any difference in model or
     /// observations computes it afresh.
     #[test]
     fn the_remembered_signal_is_the_computed_one() {
-        let mut rng = crate::rng::Rng::new(5);
-        let mut x = 0.0;
-        let mut v: Vec<f64> = (0..600)
-            .map(|_| {
-                x = 0.98 * x + 0.2 * rng.normal();
-                50.0 + x + 0.1 * rng.normal()
-            })
-            .collect();
+        let (mut ts, mut v) = wandering(5, 600, 0.98, 50.0);
         v[100] = f64::NAN;
         v[300] += 5.0;
-        let mut ts: Vec<i64> = (0..600).map(|i| i * 10).collect();
         ts.drain(400..420); // a gap
         v.drain(400..420);
         let t = table(ts, v, Sampling::Regular);
         let mut o = TagObs::build(&t, 4.0, |i| i != 7, 0);
-        let spec: ModelSpec = "local-level+arma(1,0)".parse().unwrap();
-        let given = [("sigma2.obs", 0.01), ("sigma2.level", 1e-6), ("phi.1", 0.98), ("sigma2.arma", 0.04)];
-        let f = Fitted::given(&spec, &given.iter().map(|(k, v)| (k.to_string(), *v)).collect()).unwrap();
+        let f = level_ar1(0.98);
         o.set_noise(f.obs_noise());
         let fresh = f.smooth(&o, false).unwrap();
         let same = |(m, s): (Vec<f64>, Vec<f64>)| {
@@ -1084,16 +1096,8 @@ mod tests {
     /// and it is not taken.
     #[test]
     fn the_remembered_signal_is_taken_for_its_own_table_only() {
-        let mut rng = crate::rng::Rng::new(6);
-        let mut x = 0.0;
-        let mut v: Vec<f64> = (0..500)
-            .map(|_| {
-                x = 0.97 * x + 0.2 * rng.normal();
-                20.0 + x + 0.1 * rng.normal()
-            })
-            .collect();
+        let (mut ts, mut v) = wandering(6, 500, 0.97, 20.0);
         v[50] = f64::NAN;
-        let mut ts: Vec<i64> = (0..500).map(|i| i * 10).collect();
         ts.drain(200..205); // a gap: a time step of 6 periods
         v.drain(200..205);
         let mut t = table(ts, v, Sampling::Regular);
@@ -1106,9 +1110,7 @@ mod tests {
             move |i: usize| status[i] == Status::Ok
         };
         let use_row = ok(&t);
-        let spec: ModelSpec = "local-level+arma(1,0)".parse().unwrap();
-        let given = [("sigma2.obs", 0.01), ("sigma2.level", 1e-6), ("phi.1", 0.97), ("sigma2.arma", 0.04)];
-        let f = Fitted::given(&spec, &given.iter().map(|(k, v)| (k.to_string(), *v)).collect()).unwrap();
+        let f = level_ar1(0.97);
         let mut o = TagObs::build(&t, 4.0, &use_row, 0);
         o.set_noise(f.obs_noise());
         let fresh = f.smooth(&o, false).unwrap();

@@ -210,26 +210,36 @@ pub fn change_times(s: &TagSeries, period_us: i64) -> Vec<i64> {
             t += BLOCK;
             continue;
         }
-        if d[t].is_finite() && d[t].abs() > bound {
-            let mut best = t;
-            while t < n && d[t].is_finite() && d[t].abs() > bound {
-                if d[t].abs() > d[best].abs() {
-                    best = t;
-                }
-                t += 1;
-            }
-            // Confirm with medians, which a lone spike does not move.
-            if best >= k && best + k <= n {
-                let dm = median6(&y[best..best + k]) - median6(&y[best - k..best]);
-                if dm.abs() * k as f64 > bound {
-                    out.push(ts[best]);
-                }
-            }
-        } else {
-            t += 1;
-        }
+        t = excursion(&d, y, ts, bound, t, &mut out);
     }
     out
+}
+
+/// Past the excursion of |d| above `bound` that starts at `t` (one value
+/// past `t` when there is none): the time of its largest |d| goes to `out`
+/// when the medians of the k readings either side of it differ by more
+/// than the bound too (a lone spike does not move them). Returns where the
+/// scan goes on.
+fn excursion(d: &[f64], y: &[f64], ts: &[i64], bound: f64, mut t: usize, out: &mut Vec<i64>) -> usize {
+    let (k, n) = (SURVEY_K, d.len());
+    let above = |v: f64| v.is_finite() && v.abs() > bound;
+    if !above(d[t]) {
+        return t + 1;
+    }
+    let mut best = t;
+    while t < n && above(d[t]) {
+        if d[t].abs() > d[best].abs() {
+            best = t;
+        }
+        t += 1;
+    }
+    if best >= k && best + k <= n {
+        let dm = median6(&y[best..best + k]) - median6(&y[best - k..best]);
+        if dm.abs() * k as f64 > bound {
+            out.push(ts[best]);
+        }
+    }
+    t
 }
 
 /// The `k`-th smallest of `v` (0-based; the value `select_nth_unstable`
@@ -325,7 +335,8 @@ mod tests {
     }
 
     /// The change test written the plain way (each mean summed afresh,
-    /// the median by sorting, every value visited), for comparison.
+    /// the median by sorting, every value visited), for comparison; the
+    /// excursions are taken by the same `excursion`.
     fn change_times_plain(ts: &[i64], y: &[f64], period_us: i64) -> Vec<i64> {
         let (k, n) = (SURVEY_K, y.len());
         let span = 2 * k as i64 * period_us;
@@ -338,28 +349,11 @@ mod tests {
         let mut abs: Vec<f64> = d.iter().filter(|v| v.is_finite()).map(|v| v.abs()).collect();
         abs.sort_by(f64::total_cmp);
         let bound = SURVEY_Z * 1.4826 * abs[abs.len() / 2];
+        // (Every value visited; the excursions as the test takes them.)
         let mut out = Vec::new();
         let mut t = 0;
         while t < n {
-            // (NaN is never above the bound.)
-            let above = d[t].abs() > bound;
-            if !above {
-                t += 1;
-                continue;
-            }
-            let mut best = t;
-            while t < n && d[t].abs() > bound {
-                if d[t].abs() > d[best].abs() {
-                    best = t;
-                }
-                t += 1;
-            }
-            if best >= k && best + k <= n {
-                let dm = median6(&y[best..best + k]) - median6(&y[best - k..best]);
-                if dm.abs() * k as f64 > bound {
-                    out.push(ts[best]);
-                }
-            }
+            t = excursion(&d, y, ts, bound, t, &mut out);
         }
         out
     }
